@@ -1,0 +1,187 @@
+"""Numerically stable first and second moments, merged pairwise.
+
+Each batch contributes ``(n, mean, M2)`` computed about its own mean; two
+partial results are merged with the pairwise update of Chan, Golub & LeVeque
+(1979), "Updating formulae and a pairwise algorithm for computing sample
+variances", in COMPSTAT 1982 / Stanford tech. report STAN-CS-79-773::
+
+    n    = na + nb
+    mean = ma + (mb - ma) * nb / n
+    M2   = M2a + M2b + (mb - ma)(mb - ma)^T * na * nb / n
+
+This never forms ``sum(x x^T) - n mu mu^T``, which loses every digit when the
+mean is large next to the spread (a mean of 1e8 with unit spread cancels 16
+digits in float64).  ``M2`` is the full d x d co-moment matrix (``full=True``,
+the covariance method: assembled by BLAS ``dsyrk``) or only its diagonal.
+
+Per-feature missing counts (NaN, +-inf, nulls) are carried along, and so are
+per-feature means over the finite values, which ``impute-mean`` needs.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.linalg import blas
+
+__all__ = ["Moments", "batch_moments", "merge", "tree_merge", "covariance_from"]
+
+
+@dataclass
+class Moments:
+    """Partial moments of a set of rows.
+
+    Attributes
+    ----------
+    n : int
+        Rows that entered ``mean`` and ``m2``.
+    mean : ndarray (d,)
+    m2 : ndarray (d, d) or (d,)
+        Co-moment about the mean; for (d, d) only the upper triangle is kept
+        up to date (``symmetric()`` fills the rest).
+    missing : ndarray (d,) int64
+        Non-finite values seen per feature (in all rows, used or not).
+    valid_n, valid_mean : ndarray (d,)
+        Count and mean of the finite values per feature.
+    rows_seen : int
+        All rows read, including dropped ones.
+    """
+
+    n: int
+    mean: np.ndarray
+    m2: np.ndarray
+    missing: np.ndarray
+    valid_n: np.ndarray
+    valid_mean: np.ndarray
+    rows_seen: int
+
+    @classmethod
+    def empty(cls, d: int, full: bool) -> "Moments":
+        z = np.zeros(d)
+        return cls(0, z.copy(), np.zeros((d, d)) if full else z.copy(),
+                   np.zeros(d, dtype=np.int64), np.zeros(d, dtype=np.int64), z.copy(), 0)
+
+    @property
+    def full(self) -> bool:
+        return self.m2.ndim == 2
+
+    def symmetric(self) -> np.ndarray:
+        """The full symmetric co-moment matrix (or the diagonal vector)."""
+        if not self.full:
+            return self.m2
+        upper = np.triu(self.m2)
+        return upper + np.triu(upper, 1).T
+
+    def variance(self) -> np.ndarray:
+        """Per-feature variance with denominator n - 1."""
+        diag = np.diag(self.m2) if self.full else self.m2
+        return diag / max(self.n - 1, 1)
+
+
+def _gram_upper(xc: np.ndarray) -> np.ndarray:
+    """Upper triangle of ``xc^T xc`` by BLAS dsyrk, without copying ``xc``."""
+    if xc.flags.f_contiguous:
+        return blas.dsyrk(1.0, xc, trans=1, lower=0)
+    return blas.dsyrk(1.0, xc.T, trans=0, lower=0)
+
+
+def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | None = None) -> Moments:
+    """Moments of one decoded batch.
+
+    Parameters
+    ----------
+    x : ndarray (n, d) float64
+        May hold NaN/inf; it is modified in place when values are imputed.
+    full : bool
+        Assemble the d x d co-moment (covariance method) or only its diagonal.
+    missing : {"fail", "drop-rows", "impute-mean"}
+        ``fail`` and ``drop-rows`` leave rows with a non-finite value out of
+        the moments (``fail`` is raised by the caller from the counts).
+        ``impute-mean`` replaces them by ``fill`` when it is given, else drops
+        the rows (the first of the two passes impute-mean needs).
+    fill : ndarray (d,), optional
+    """
+    n_all, d = x.shape
+    finite = np.isfinite(x)
+    bad = ~finite
+    miss = bad.sum(axis=0).astype(np.int64)
+    any_missing = bool(miss.any())
+    valid_n = n_all - miss
+    if any_missing:
+        valid_mean = np.where(finite, x, 0.0).sum(axis=0) / np.maximum(valid_n, 1)
+    if any_missing:
+        if missing == "impute-mean" and fill is not None:
+            x[bad] = np.broadcast_to(fill, x.shape)[bad]
+        else:
+            x = x[finite.all(axis=1)]
+    n = x.shape[0]
+    if n == 0:
+        part = Moments.empty(d, full)
+    else:
+        mean = x.mean(axis=0)
+        xc = x - mean
+        m2 = _gram_upper(xc) if full else np.einsum("ij,ij->j", xc, xc)
+        part = Moments(n, mean, m2, np.zeros(d, np.int64), np.zeros(d, np.int64), np.zeros(d), 0)
+    part.missing = miss
+    part.valid_n = valid_n
+    part.valid_mean = valid_mean if any_missing else part.mean.copy()
+    part.rows_seen = n_all
+    return part
+
+
+def _merge_means(na, ma, nb, mb):
+    n = na + nb
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = np.where(n > 0, nb / np.maximum(n, 1), 0.0)
+    return ma + (mb - ma) * w
+
+
+def merge(a: Moments, b: Moments) -> Moments:
+    """Chan-Golub-LeVeque pairwise merge of two partial results."""
+    n = a.n + b.n
+    if a.n == 0:
+        mean, m2 = b.mean, b.m2
+    elif b.n == 0:
+        mean, m2 = a.mean, a.m2
+    else:
+        delta = b.mean - a.mean
+        mean = a.mean + delta * (b.n / n)
+        w = a.n * b.n / n
+        m2 = a.m2 + b.m2 + (np.outer(delta, delta) * w if a.full else delta * delta * w)
+    return Moments(
+        n=n,
+        mean=mean,
+        m2=m2,
+        missing=a.missing + b.missing,
+        valid_n=a.valid_n + b.valid_n,
+        valid_mean=_merge_means(a.valid_n, a.valid_mean, b.valid_n, b.valid_mean),
+        rows_seen=a.rows_seen + b.rows_seen,
+    )
+
+
+def tree_merge(parts):
+    """Merge a sequence pairwise, in a fixed order independent of the scheduler."""
+    parts = list(parts)
+    if not parts:
+        raise ValueError("tree_merge needs at least one part")
+    while len(parts) > 1:
+        parts = [merge(parts[i], parts[i + 1]) if i + 1 < len(parts) else parts[i]
+                 for i in range(0, len(parts), 2)]
+    return parts[0]
+
+
+def covariance_from(m: Moments, center: bool, scale: np.ndarray | None) -> np.ndarray:
+    """The matrix the solver works on, from full moments.
+
+    ``M2 / (n - 1)`` (about the mean), or ``(M2 + n mu mu^T) / (n - 1)``
+    (about zero) when ``center`` is false; then divided on both sides by
+    ``scale`` (the standard deviations) when given, which makes it exactly the
+    correlation matrix.
+    """
+    c = m.symmetric() / (m.n - 1)
+    if not center:
+        c = c + np.outer(m.mean, m.mean) * (m.n / (m.n - 1))
+    if scale is not None:
+        c = c / scale[:, None] / scale[None, :]
+    return c

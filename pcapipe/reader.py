@@ -1,0 +1,155 @@
+"""Decode blocks of Parquet into float64 arrays, inside dask tasks.
+
+The reader knows Parquet and nothing about linear algebra.  A block (one row
+group) is streamed as record batches of at most ``batch_rows`` rows, so a
+task's memory is bounded by the batch, not by the row group.  Each batch is
+decoded straight into one float64 buffer: scalar columns fill a
+Fortran-ordered buffer column by column (contiguous writes, and the layout
+BLAS ``syrk``/``gemm`` want); a vector column is reshaped from its child
+buffer without per-row Python work.  An optional affine transform
+``(x - shift) * inv_scale`` is fused into that single write.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Iterator
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from .errors import InputError
+
+__all__ = ["ReadSpec", "iter_block", "iter_file", "batch_to_array", "table_to_array"]
+
+
+@dataclass(frozen=True)
+class ReadSpec:
+    """What to decode: the feature columns, how wide, and how many rows at a time."""
+
+    columns: tuple[str, ...]
+    vector_column: str
+    n_features: int
+    batch_rows: int
+    keep: tuple[str, ...] = ()
+
+
+def _column_into(out: np.ndarray, arr: pa.ChunkedArray | pa.Array, shift, inv_scale) -> None:
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    if arr.null_count:
+        arr = pc.cast(arr, pa.float64()).fill_null(np.nan)
+    values = arr.to_numpy(zero_copy_only=False)
+    if shift is None:
+        out[:] = values
+    else:
+        np.subtract(values, shift, out=out, casting="unsafe")
+        if inv_scale is not None:
+            out *= inv_scale
+
+
+def _vector_array(arr, n_features: int, where: str) -> np.ndarray:
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    if arr.null_count:
+        row = int(pc.index(pc.is_null(arr), True).as_py())
+        raise InputError(f"{where}: vector column row {row} is null; every row needs a vector (drop or fill it)")
+    if not pa.types.is_fixed_size_list(arr.type):
+        lengths = pc.list_value_length(arr).to_numpy(zero_copy_only=False)
+        bad = np.flatnonzero(lengths != n_features)
+        if bad.size:
+            raise InputError(
+                f"{where}: vector column row {int(bad[0])} has {int(lengths[bad[0]])} values, "
+                f"expected {n_features} like the first row; the vectors must all have one length"
+            )
+    flat = arr.flatten()
+    if flat.null_count:
+        flat = pc.cast(flat, pa.float64()).fill_null(np.nan)
+    values = flat.to_numpy(zero_copy_only=False)
+    return values.reshape(len(arr), n_features)
+
+
+def batch_to_array(batch, spec: ReadSpec, where: str, shift=None, inv_scale=None) -> np.ndarray:
+    """Decode a record batch (or table) to an ``(n, d)`` float64 array.
+
+    Parameters
+    ----------
+    batch : pyarrow.RecordBatch or pyarrow.Table
+        Holds the columns of ``spec``.
+    spec : ReadSpec
+    where : str
+        File (and block) named in error messages.
+    shift, inv_scale : ndarray of shape (d,), optional
+        When given, the result is ``(x - shift) * inv_scale``, computed in the
+        same write as the decode.
+
+    Returns
+    -------
+    ndarray
+        float64, Fortran-ordered for scalar columns, C-ordered for a vector
+        column.  Missing values (nulls) are NaN.
+    """
+    n = batch.num_rows
+    if spec.vector_column:
+        x = _vector_array(batch.column(spec.vector_column), spec.n_features, where)
+        if x.dtype != np.float64 or shift is not None:
+            x64 = np.empty(x.shape, dtype=np.float64)
+            if shift is None:
+                x64[...] = x
+            else:
+                np.subtract(x, shift, out=x64, casting="unsafe")
+                if inv_scale is not None:
+                    x64 *= inv_scale
+            x = x64
+        return x
+    out = np.empty((n, spec.n_features), dtype=np.float64, order="F")
+    for j, name in enumerate(spec.columns):
+        _column_into(
+            out[:, j],
+            batch.column(name),
+            None if shift is None else shift[j],
+            None if inv_scale is None else inv_scale[j],
+        )
+    return out
+
+
+def table_to_array(table: pa.Table, spec: ReadSpec, where: str, shift=None, inv_scale=None) -> np.ndarray:
+    """Decode a whole in-memory table (used by ``project`` on a DataFrame)."""
+    return batch_to_array(table, spec, where, shift, inv_scale)
+
+
+def _open(path: str) -> pq.ParquetFile:
+    try:
+        return pq.ParquetFile(path)
+    except (OSError, pa.ArrowException) as e:
+        raise InputError(f"{path}: cannot be read as Parquet ({e}); re-copy the file") from e
+
+
+def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=None,
+               with_keep: bool = False) -> Iterator[tuple[np.ndarray, pa.RecordBatch | None]]:
+    """Stream one row group as decoded batches.
+
+    Yields ``(x, keep_batch)`` where ``keep_batch`` holds the keep columns
+    when ``with_keep`` is true (else None).
+    """
+    pf = _open(path)
+    columns = list(spec.columns) + (list(spec.keep) if with_keep else [])
+    where = f"{path} (row group {row_group})"
+    try:
+        batches = pf.iter_batches(batch_size=spec.batch_rows, row_groups=[row_group],
+                                  columns=columns, use_threads=False)
+        for batch in batches:
+            x = batch_to_array(batch, spec, where, shift, inv_scale)
+            keep = batch.select(list(spec.keep)) if with_keep else None
+            yield x, keep
+    except pa.ArrowException as e:
+        raise InputError(f"{where}: cannot be decoded ({e}); the file may be truncated, re-copy it") from e
+
+
+def iter_file(path: str, row_groups, spec: ReadSpec, shift=None, inv_scale=None,
+              with_keep: bool = False):
+    """Stream the given row groups of one file in order (row order kept)."""
+    for rg in row_groups:
+        yield from iter_block(path, rg, spec, shift, inv_scale, with_keep)

@@ -1,0 +1,163 @@
+"""Functions that run inside dask tasks, one call per block (or per file).
+
+Each task opens its Parquet file with pyarrow, streams the block in batches
+(:mod:`pcapipe.reader`) and returns a small partial result: moments, a
+``d x b`` product, or a row count after writing a scores part.  Tasks take
+only plain values (paths, numbers, arrays), so they run unchanged in a
+thread, a process, or on a remote dask worker.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .moments import Moments, batch_moments, tree_merge
+from .reader import ReadSpec, iter_block
+
+__all__ = ["Transform", "moments_task", "product_task", "scores_task", "decode_task",
+           "product_cached_task", "add", "limit_blas", "probe_task"]
+
+_blas_limit = None
+
+
+def limit_blas(threads: int) -> None:
+    """Cap BLAS threads in this worker process once (worker threads x BLAS <= cores)."""
+    global _blas_limit
+    if threads <= 0 or _blas_limit is not None:
+        return
+    from threadpoolctl import threadpool_limits
+
+    _blas_limit = threadpool_limits(limits=threads, user_api="blas")
+
+
+@dataclass(frozen=True)
+class Transform:
+    """Preprocessing applied to each row: ``(x - shift) * inv_scale``, then missing handling.
+
+    ``missing`` is what to do with a non-finite value: ``"zero"`` (the mean,
+    after centering: impute-mean), ``"drop"`` (the row is left out of sums and
+    gets NaN scores), or ``"none"`` (the moments pass proved there are none).
+    """
+
+    shift: np.ndarray
+    inv_scale: np.ndarray | None
+    missing: str
+
+
+def _prepare(x: np.ndarray, t: Transform) -> tuple[np.ndarray, np.ndarray | None]:
+    """Apply the missing rule to a transformed batch; returns (rows used, mask of rows used)."""
+    if t.missing == "none":
+        return x, None
+    bad = ~np.isfinite(x)
+    if not bad.any():
+        return x, None
+    if t.missing == "zero":
+        x[bad] = 0.0
+        return x, None
+    ok = ~bad.any(axis=1)
+    return x[ok], ok
+
+
+def moments_task(path: str, row_group: int, spec: ReadSpec, full: bool, missing: str,
+                 fill=None, blas_threads: int = 0) -> Moments:
+    """Moments of one block, batches merged pairwise in order."""
+    limit_blas(blas_threads)
+    parts = [batch_moments(x, full, missing, fill) for x, _ in iter_block(path, row_group, spec)]
+    if not parts:
+        return Moments.empty(spec.n_features, full)
+    return tree_merge(parts)
+
+
+def _product(x: np.ndarray, v: np.ndarray) -> np.ndarray:
+    return x.T @ (x @ v)
+
+
+def product_task(path: str, row_group: int, spec: ReadSpec, t: Transform, v: np.ndarray,
+                 blas_threads: int = 0) -> np.ndarray:
+    """``sum over batches of Xb~^T (Xb~ V)`` for one block, Xb~ transformed on the fly."""
+    limit_blas(blas_threads)
+    out = np.zeros((spec.n_features, v.shape[1]))
+    for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale):
+        x, _ = _prepare(x, t)
+        out += _product(x, v)
+    return out
+
+
+def decode_task(path: str, row_group: int, spec: ReadSpec, t: Transform, blas_threads: int = 0) -> np.ndarray:
+    """A whole block decoded and transformed, to be kept in worker memory between passes."""
+    limit_blas(blas_threads)
+    parts = [_prepare(x, t)[0] for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale)]
+    if len(parts) == 1:
+        return parts[0]
+    return np.concatenate(parts, axis=0) if parts else np.zeros((0, spec.n_features))
+
+
+def product_cached_task(x: np.ndarray, v: np.ndarray, blas_threads: int = 0) -> np.ndarray:
+    """``X~^T (X~ V)`` for a block already decoded in memory."""
+    limit_blas(blas_threads)
+    return _product(x, v)
+
+
+def add(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Sum of two partial products (a tree-reduction node)."""
+    return a + b
+
+
+def scores_task(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: np.ndarray,
+                names, out_path: str, blas_threads: int = 0) -> int:
+    """Write the scores of one input file to ``out_path``; returns the rows written.
+
+    Keep columns are copied as they are; rows dropped for missing values get
+    NaN scores, so row ``i`` of the part is row ``i`` of the input file.  The
+    part is written under a temporary name and renamed, so a part that exists
+    is complete.
+    """
+    limit_blas(blas_threads)
+    tmp = out_path + ".tmp"
+    writer = None
+    rows = 0
+    try:
+        for x, keep in iter_block_many(path, row_groups, spec, t):
+            x, ok = _prepare(x, t)
+            s = x @ loadings
+            if ok is not None:
+                full = np.full((ok.size, loadings.shape[1]), np.nan)
+                full[ok] = s
+                s = full
+            arrays = list(keep.columns) if keep is not None else []
+            labels = list(keep.schema.names) if keep is not None else []
+            arrays += [pa.array(s[:, j]) for j in range(s.shape[1])]
+            table = pa.Table.from_arrays(arrays, names=labels + list(names))
+            if writer is None:
+                writer = pq.ParquetWriter(tmp, table.schema, compression="zstd")
+            writer.write_table(table)
+            rows += table.num_rows
+        if writer is None:
+            schema = pa.schema([*(pa.field(n, pa.float64()) for n in names)])
+            writer = pq.ParquetWriter(tmp, schema, compression="zstd")
+    finally:
+        if writer is not None:
+            writer.close()
+    os.replace(tmp, out_path)
+    return rows
+
+
+def iter_block_many(path, row_groups, spec, t):
+    for rg in row_groups:
+        yield from iter_block(path, rg, spec, t.shift, t.inv_scale, with_keep=True)
+
+
+def probe_task(path: str) -> dict:
+    """Open one file's footer on a worker (the cluster can read the input)."""
+    import socket
+
+    try:
+        rows = pq.ParquetFile(path).metadata.num_rows
+        return {"ok": True, "host": socket.gethostname(), "rows": rows}
+    except Exception as e:  # reported to the client with the worker's name
+        return {"ok": False, "host": socket.gethostname(), "error": f"{type(e).__name__}: {e}"}
