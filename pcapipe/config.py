@@ -53,7 +53,7 @@ class ModelConfig:
     center: bool = True
     scale: bool = False
     method: str = "auto"              # see CHOICES
-    tolerance: float = 1e-8           # relative residual, in (0, 1)
+    tolerance: float = 1e-9           # relative residual, in (0, 1)
     max_iterations: int = 300
     oversample: int = 8
     seed: int = 0

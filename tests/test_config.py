@@ -272,12 +272,15 @@ BAD = [
      "is not one of"),                                             # wrong protocol
     (_with(compute={"scheduler": "tcp://host"}), 'compute.scheduler: "tcp://host" is not '
      'an address tcp://HOST:PORT with an integer port; e.g. scheduler = "tcp://'),  # no port
+    # word port
     (_with(compute={"scheduler": "tcp://host:port"}),
-     'compute.scheduler: "tcp://host:port" is not an address tcp://HOST:PORT with an integer port'),  # word port
+     'compute.scheduler: "tcp://host:port" is not an address tcp://HOST:PORT with an integer port'),
+    # no host
     (_with(compute={"scheduler": "tcp://:8786"}),
-     'compute.scheduler: "tcp://:8786" is not an address tcp://HOST:PORT with an integer port'),  # no host
+     'compute.scheduler: "tcp://:8786" is not an address tcp://HOST:PORT with an integer port'),
+    # space in host
     (_with(compute={"scheduler": "tcp://a b:1"}),
-     'compute.scheduler: "tcp://a b:1" is not an address tcp://HOST:PORT with an integer port'),  # space in host
+     'compute.scheduler: "tcp://a b:1" is not an address tcp://HOST:PORT with an integer port'),
     (_with(compute={"scheduler": "tcp://host:0"}),
      'compute.scheduler: "tcp://host:0": port 0 is outside 1-65535'),
     (_with(compute={"scheduler": "tcp://host:70000"}),
