@@ -181,6 +181,26 @@ class Runner:
         return list(dask.persist(*objs, scheduler="threads" if self.info.scheduler != "synchronous"
                                  else "synchronous"))
 
+    def probe(self, path: str) -> None:
+        """Check that every worker can open ``path`` (the first input file) before any data is read.
+
+        Raises
+        ------
+        ClusterError
+            Naming the worker and the path; on a cluster the input must be on a
+            filesystem every worker shares.
+        """
+        if not self.distributed:
+            return
+        from .tasks import probe_task
+
+        for worker, answer in self.run_on_workers(probe_task, path).items():
+            if not answer["ok"]:
+                raise ClusterError(
+                    f"worker {worker} (host {answer['host']}) cannot read {path}: {answer['error']}; "
+                    "on a cluster every input path must be on a filesystem all workers share"
+                )
+
     def run_on_workers(self, fn, *args):
         """Run ``fn(*args)`` once on every worker; returns {worker address: result}."""
         if not self.distributed:

@@ -14,8 +14,9 @@ of the outputs (see README, "Run directory"):
 
 from __future__ import annotations
 
+import contextlib
 import logging
-import os
+import shutil
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -25,10 +26,11 @@ import numpy as np
 from ._version import __version__
 from .compute import Runner, _cores
 from .config import Config, load_config, resolve_path
-from .errors import InputError
+from .checkpoint import Checkpoint, job_identity
+from .errors import InputError, OutputError
 from .moments import Moments, covariance_from
-from .operators import DenseOperator, MatrixFreeOperator, choose_method
-from .outputs import build_tables, manifest_for
+from .operators import DenseOperator, MatrixFreeOperator, MethodChoice, choose_method
+from .outputs import build_tables, component_names, manifest_for
 from .passes import DataPasses
 from .plan import Plan, make_plan
 from .solver import SolverResult, solve
@@ -128,14 +130,14 @@ def _preprocessing(p: Prepared, m: Moments) -> tuple[Transform, np.ndarray, np.n
     return Transform(shift, inv, missing), std, scale_used
 
 
-def _solve(p: Prepared, op, rng, depth: int, callback=None) -> SolverResult:
+def _solve(p: Prepared, op, rng, depth: int, callback=None, state=None) -> SolverResult:
     mc = p.cfg.model
     d = p.plan.n_features
     kwargs = dict(tolerance=mc.tolerance, max_iterations=mc.max_iterations, oversample=mc.oversample,
                   depth=depth, callback=callback)
     comp = mc.components
     if isinstance(comp, int):
-        return solve(op.matmat, d, comp, rng=rng, **kwargs)
+        return solve(op.matmat, d, comp, rng=rng, state=state, **kwargs)
     # A fraction of the variance: grow k until the cumulative share reaches it,
     # warm-starting each round from the vectors already found.
     k, start = min(d, max(2, mc.oversample)), None
@@ -168,7 +170,7 @@ def _solver_depth(d: int, block: int, memory: int) -> int:
     return max(1, min(8, fit))
 
 
-def run(config, overrides=(), resume: bool = False):
+def run(config, overrides=(), resume: bool = False, runner: Runner | None = None):
     """Run the job described by ``config`` and return its :class:`~pcapipe.result.Result`.
 
     Parameters
@@ -178,62 +180,166 @@ def run(config, overrides=(), resume: bool = False):
     overrides : sequence of str
         ``"section.key=value"`` overrides (the command line's ``--set``).
     resume : bool
-        Continue from the checkpoint of an interrupted run (see ``checkpoint``).
+        Continue an interrupted run from its last complete pass
+        (:mod:`pcapipe.checkpoint`).
+    runner : Runner, optional
+        An already open scheduler connection to reuse (several configs over
+        one cluster connection); by default one is opened for this run.
+
+    Raises
+    ------
+    PcapipeError
+        Bad config or input (nothing is left behind), or a checkpoint that
+        does not fit this job.
     """
     from .result import load
 
     p = prepare(config, overrides)
-    t_start = time.perf_counter()
-    timings = dict(p.timings)
-    with Runner(p.cfg.compute) as runner:
-        info = runner.info
+    ckpt = Checkpoint(p.writer.partial, job_identity(p.cfg, p.plan))
+    if resume:
+        ckpt.load(f"{p.cfg.source}")
+    elif ckpt.exists and not p.cfg.output.overwrite:
+        raise OutputError(
+            f"output.directory: an unfinished run of {p.writer.directory} is in {p.writer.partial}; "
+            "continue it with --resume, or set output.overwrite = true to start again"
+        )
+    p.writer.start(keep_partial=resume)
+    try:
+        with contextlib.ExitStack() as stack:
+            if runner is None:
+                runner = stack.enter_context(Runner(p.cfg.compute))
+            manifest = _Job(p, runner, ckpt).execute()
+        directory = p.writer.finish(manifest)
+    except BaseException as e:
+        if not ckpt.exists:
+            shutil.rmtree(p.writer.partial, ignore_errors=True)
+        elif isinstance(e, KeyboardInterrupt):
+            log.warning("interrupted; the checkpoint is kept in %s; continue with: pcapipe run %s --resume",
+                        ckpt.dir, p.cfg.source)
+        raise
+    log.info("wrote %s", directory)
+    return load(directory)
+
+
+class _Job:
+    """The stages of one run; each stage checkpoints what the next needs."""
+
+    def __init__(self, p: Prepared, runner: Runner, ckpt: Checkpoint):
+        self.p, self.runner, self.ckpt = p, runner, ckpt
+        self.state = ckpt.state
+        self.timings = dict(self.state.get("timings", {}), **p.timings)
+        self.resumed = self.state.get("stage")
+
+    def _choose(self):
+        p, info = self.p, self.runner.info
         d, n = p.plan.n_features, p.plan.n_rows
         comp = p.cfg.model.components
         k_guess = comp if isinstance(comp, int) else min(d, max(2, p.cfg.model.oversample))
-        block = min(d, k_guess + p.cfg.model.oversample)
-        choice = choose_method(p.cfg.model.method, n, d, block, p.plan.total_bytes,
-                               info.memory_per_worker, info.workers, min(_cores(), runner.parallelism))
+        self.block = min(d, k_guess + p.cfg.model.oversample)
+        if "method" in self.state:
+            return MethodChoice(self.state["method"], self.state["method_reason"], self.state["method_estimates"])
+        return choose_method(p.cfg.model.method, n, d, self.block, p.plan.total_bytes,
+                             info.memory_per_worker, info.workers, min(_cores(), self.runner.parallelism))
+
+    def execute(self) -> dict:
+        p, runner = self.p, self.runner
+        info = runner.info
+        runner.probe(p.plan.files[0].path)
+        choice = self._choose()
         log.info("method: %s (%s)", choice.method, choice.reason)
-        p.writer.start()
+        d = p.plan.n_features
         passes = DataPasses(p.plan, runner, batch_rows_for(d, info.memory_per_worker))
-        t = time.perf_counter()
-        m = _moments_pass(p, passes, full=choice.method == "covariance")
-        timings["moments_seconds"] = time.perf_counter() - t
+        passes.count = self.state.get("passes", 0)
+        m = self._moments(passes, choice)
         transform, std, scale_used = _preprocessing(p, m)
-        if choice.method == "covariance":
-            c = covariance_from(m, p.cfg.model.center, scale_used if p.cfg.model.scale else None)
-            op = DenseOperator(c)
-            cache = "not needed (one pass)"
-        else:
-            trace = _trace(m, p.cfg.model.center, scale_used if p.cfg.model.scale else None)
-            op = MatrixFreeOperator(lambda v: passes.product(transform, v), m.n, trace, d)
-            cache = _maybe_cache(passes, runner, transform, m.n, d)
-        rng = np.random.default_rng(p.cfg.model.seed)
-        t = time.perf_counter()
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            res = _solve(p, op, rng, _solver_depth(d, block, info.memory_per_worker))
-        for w in caught:
-            log.warning("%s", w.message)
-            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
-        timings["solver_seconds"] = time.perf_counter() - t
-        passes.release()
+        res, trace, cache = self._solve(passes, choice, m, transform, scale_used)
         vectors = _orient(res.vectors)
         t = time.perf_counter()
         score_rows = None
         if p.cfg.output.scores:
-            names = [f"PC{i + 1}" for i in range(vectors.shape[1])]
-            score_rows = passes.scores(transform, vectors, names, p.writer.path("scores"))
-        timings["scores_seconds"] = time.perf_counter() - t
-        timings["total_seconds"] = time.perf_counter() - t_start + timings["plan_seconds"]
-        tables = build_tables(p.plan, m, res, vectors, std, scale_used, op.trace)
-        for name, table in tables.items():
+            score_rows = passes.scores(transform, vectors, component_names(vectors.shape[1]),
+                                       p.writer.path("scores"))
+        self.timings["scores_seconds"] = time.perf_counter() - t
+        self.timings["total_seconds"] = sum(v for k, v in self.timings.items() if k != "total_seconds")
+        for name, table in build_tables(p.plan, m, res, vectors, std, scale_used, trace).items():
             p.writer.write_table(name, table)
-        manifest = manifest_for(p, m, res, choice, op.trace, passes.count, cache, info, timings,
-                                score_rows, version=__version__)
-    directory = p.writer.finish(manifest)
-    log.info("wrote %s", directory)
-    return load(directory)
+        extra = {"resumed": self.state.get("resumes", [])}
+        return manifest_for(p, m, res, choice, trace, passes.count, cache, info, self.timings,
+                            score_rows, version=__version__, extra=extra)
+
+    def _save(self, stage: str, choice, passes, **arrays) -> None:
+        self.ckpt.save(stage, method=choice.method, method_reason=choice.reason,
+                       method_estimates=choice.estimates, passes=passes.count, timings=self.timings,
+                       resumes=self.state.get("resumes", []), **arrays)
+
+    def _moments(self, passes: DataPasses, choice) -> Moments:
+        if self.resumed:
+            self.state.setdefault("resumes", []).append({"from_stage": self.resumed,
+                                                         "passes_before": self.state.get("passes", 0)})
+            log.info("resuming from the checkpoint after stage %r", self.resumed)
+            return self.ckpt.moments()
+        t = time.perf_counter()
+        m = _moments_pass(self.p, passes, full=choice.method == "covariance")
+        self.timings["moments_seconds"] = time.perf_counter() - t
+        self._save("moments", choice, passes, moments=m)
+        return m
+
+    def _solve(self, passes, choice, m, transform, scale_used):
+        p = self.p
+        scale = scale_used if p.cfg.model.scale else None
+        d = p.plan.n_features
+        if choice.method == "covariance":
+            op = DenseOperator(covariance_from(m, p.cfg.model.center, scale))
+            cache = "not needed (one pass)"
+        else:
+            op = MatrixFreeOperator(lambda v: passes.product(transform, v), m.n, _trace(m, p.cfg.model.center, scale), d)
+            cache = None
+        if self.state.get("stage") == "solved":
+            return self._solution(), op.trace, self.state.get("cache", cache)
+        if cache is None:
+            cache = _maybe_cache(passes, self.runner, transform, m.n, d)
+        t = time.perf_counter()
+        res = self._iterate(op, passes, choice)
+        passes.release()
+        self.timings["solver_seconds"] = self.timings.get("solver_seconds", 0.0) + time.perf_counter() - t
+        self.state["cache"] = cache
+        self._save("solved", choice, passes, solution=_solution_arrays(res))
+        return res, op.trace, cache
+
+    def _iterate(self, op, passes, choice) -> SolverResult:
+        p = self.p
+        depth = _solver_depth(p.plan.n_features, self.block, self.runner.info.memory_per_worker)
+        rng = np.random.default_rng(p.cfg.model.seed)
+        resume_state = None
+        if self.state.get("stage") == "solver" and isinstance(p.cfg.model.components, int):
+            resume_state = self.ckpt.solver_state()
+            rng.bit_generator.state = self.state["rng"]
+
+        def checkpoint(solver):
+            if choice.method == "matrix-free":
+                self.state["rng"] = solver.rng.bit_generator.state
+                self._save("solver", choice, passes, solver=solver.state)
+
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            res = _solve(p, op, rng, depth, callback=checkpoint, state=resume_state)
+        for w in caught:
+            log.warning("%s", w.message)
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+        return res
+
+    def _solution(self) -> SolverResult:
+        a = self.ckpt.solution()
+        return SolverResult(a["values"], a["vectors"], a["residual_norms"], a["converged"], a["gaps"],
+                            int(a["iterations"]), int(a["matvecs"]), a["history"], int(a["depth"]),
+                            int(a["block"]))
+
+
+def _solution_arrays(res: SolverResult) -> dict:
+    return {"values": res.values, "vectors": res.vectors, "residual_norms": res.residual_norms,
+            "converged": res.converged, "gaps": res.gaps, "iterations": np.array(res.iterations),
+            "matvecs": np.array(res.matvecs), "history": res.history, "depth": np.array(res.depth),
+            "block": np.array(res.block)}
 
 
 def _trace(m: Moments, center: bool, scale) -> float:

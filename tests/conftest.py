@@ -1,0 +1,84 @@
+"""Shared helpers for the tests: write arrays as Parquet, build configs, run the CLI."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+
+
+def write_parquet(directory, x, *, files=1, row_group=None, vector=None, prefix="f", keep=None,
+                  dtype=None, name="part"):
+    """Write the rows of ``x`` into ``files`` Parquet files (row order kept); returns the paths.
+
+    ``vector``: None for one scalar column per feature (``f0``, ``f1``, ...), or
+    ``"fixed"`` / ``"list"`` for one vector column ``emb``.  ``keep``: extra
+    columns (dict name -> array over all rows).
+    """
+    os.makedirs(directory, exist_ok=True)
+    x = np.asarray(x)
+    if dtype is not None:
+        x = x.astype(dtype)
+    bounds = np.linspace(0, x.shape[0], files + 1).astype(int)
+    paths = []
+    for i in range(files):
+        sl = slice(bounds[i], bounds[i + 1])
+        part = x[sl]
+        cols = {}
+        for k, v in (keep or {}).items():
+            cols[k] = np.asarray(v)[sl]
+        if vector is None:
+            for j in range(x.shape[1]):
+                cols[f"{prefix}{j}"] = part[:, j]
+        else:
+            flat = pa.array(np.ascontiguousarray(part).ravel())
+            if vector == "fixed":
+                cols["emb"] = pa.FixedSizeListArray.from_arrays(flat, x.shape[1])
+            else:
+                offsets = pa.array(np.arange(0, part.size + 1, x.shape[1], dtype=np.int32))
+                cols["emb"] = pa.ListArray.from_arrays(offsets, flat)
+        path = os.path.join(directory, f"{name}-{i:03d}.parquet")
+        pq.write_table(pa.table(cols), path, row_group_size=row_group or max(1, part.shape[0]))
+        paths.append(path)
+    return paths
+
+
+def make_config(data_glob, out_dir, **sections):
+    """A config dict; ``sections`` like ``model={"components": 3}`` update the defaults."""
+    cfg = {
+        "input": {"paths": [data_glob]},
+        "model": {},
+        "compute": {"scheduler": "threads", "progress": False},
+        "output": {"directory": str(out_dir), "report": False},
+    }
+    for key, values in sections.items():
+        cfg.setdefault(key, {}).update(values)
+    return cfg
+
+
+def run_cli(*args, cwd=None, timeout=300, env=None):
+    """Run ``python -m pcapipe ARGS`` in a subprocess; returns the CompletedProcess."""
+    full_env = dict(os.environ)
+    full_env.update(env or {})
+    return subprocess.run([sys.executable, "-m", "pcapipe", *map(str, args)], capture_output=True,
+                          text=True, cwd=cwd or ROOT, timeout=timeout, env=full_env)
+
+
+def known_spectrum(n, d, values, rng, mean=0.0):
+    """Rows whose population covariance has eigenvalues ``values`` (padded with a flat tail)."""
+    values = np.asarray(values, dtype=float)
+    q, _ = np.linalg.qr(rng.standard_normal((d, d)))
+    z = rng.standard_normal((n, d)) * np.sqrt(values)
+    return z @ q.T + mean
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(12345)
