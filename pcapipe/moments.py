@@ -92,7 +92,7 @@ def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | No
     Parameters
     ----------
     x : ndarray (n, d) float64
-        May hold NaN/inf; it is modified in place when values are imputed.
+        May hold NaN/inf.  Overwritten (centered in place) when writable.
     full : bool
         Assemble the d x d co-moment (covariance method) or only its diagonal.
     missing : {"fail", "drop-rows", "impute-mean"}
@@ -103,29 +103,38 @@ def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | No
     fill : ndarray (d,), optional
     """
     n_all, d = x.shape
-    finite = np.isfinite(x)
-    bad = ~finite
-    miss = bad.sum(axis=0).astype(np.int64)
-    any_missing = bool(miss.any())
-    valid_n = n_all - miss
-    if any_missing:
-        valid_mean = np.where(finite, x, 0.0).sum(axis=0) / np.maximum(valid_n, 1)
-    if any_missing:
+    col = x.sum(axis=0)
+    miss = np.zeros(d, dtype=np.int64)
+    valid_mean = None
+    # A column sum is finite exactly when the column is (barring overflow, which
+    # then takes the slow path too), so clean batches never build a mask.
+    if not np.isfinite(col).all():
+        finite = np.isfinite(x)
+        miss = (~finite).sum(axis=0).astype(np.int64)
+        valid_mean = np.where(finite, x, 0.0).sum(axis=0) / np.maximum(n_all - miss, 1)
         if missing == "impute-mean" and fill is not None:
-            x[bad] = np.broadcast_to(fill, x.shape)[bad]
+            x = np.where(finite, x, fill)
         else:
             x = x[finite.all(axis=1)]
+        col = x.sum(axis=0)
     n = x.shape[0]
     if n == 0:
         part = Moments.empty(d, full)
     else:
-        mean = x.mean(axis=0)
-        xc = x - mean
-        m2 = _gram_upper(xc) if full else np.einsum("ij,ij->j", xc, xc)
-        part = Moments(n, mean, m2, np.zeros(d, np.int64), np.zeros(d, np.int64), np.zeros(d), 0)
+        if not x.flags.writeable:
+            x = x.copy()
+        mean = col / n
+        x -= mean
+        # Corrected two-pass: the rounding error of the first mean is removed
+        # with the mean of the centered values (Chan, Golub & LeVeque 1983,
+        # "Algorithms for computing the sample variance", Am. Stat. 37, eq. 1.7).
+        r = x.sum(axis=0) / n
+        m2 = _gram_upper(x) if full else np.einsum("ij,ij->j", x, x)
+        m2 -= (np.outer(r, r) if full else r * r) * n
+        part = Moments(n, mean + r, m2, miss, np.zeros(d, np.int64), np.zeros(d), n_all)
     part.missing = miss
-    part.valid_n = valid_n
-    part.valid_mean = valid_mean if any_missing else part.mean.copy()
+    part.valid_n = n_all - miss
+    part.valid_mean = valid_mean if valid_mean is not None else part.mean.copy()
     part.rows_seen = n_all
     return part
 
