@@ -264,8 +264,17 @@ class _Job:
         for name, table in build_tables(p.plan, m, res, vectors, std, scale_used, trace).items():
             p.writer.write_table(name, table)
         extra = {"resumed": self.state.get("resumes", [])}
-        return manifest_for(p, m, res, choice, trace, passes.count, cache, info, self.timings,
-                            score_rows, version=__version__, extra=extra)
+        manifest = manifest_for(p, m, res, choice, trace, passes.count, cache, info, self.timings,
+                                score_rows, version=__version__, extra=extra)
+        if p.cfg.output.report:
+            from .report import build_report
+
+            t = time.perf_counter()
+            manifest["report"] = build_report(p.writer.partial, manifest)
+            manifest["timings"]["report_seconds"] = round(time.perf_counter() - t, 4)
+        else:
+            manifest["report"] = {"requested": False, "written": False}
+        return manifest
 
     def _save(self, stage: str, choice, passes, **arrays) -> None:
         self.ckpt.save(stage, method=choice.method, method_reason=choice.reason,

@@ -100,8 +100,6 @@ def manifest_for(p, m, res, choice, total_variance, passes, cache, info, timings
         "scores": {"written": score_rows is not None,
                    "parts": len(score_rows) if score_rows is not None else 0,
                    "rows": int(sum(score_rows)) if score_rows is not None else 0},
-        "report": {"requested": p.cfg.output.report, "written": False,
-                   "note": "the report is not built yet in this version"},
         "timings": {k: round(v, 4) for k, v in timings.items()},
     }
     if extra:
