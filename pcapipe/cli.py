@@ -10,11 +10,13 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import os
 import sys
 import traceback
+import warnings
 
 from ._version import __version__
-from .errors import PcapipeError
+from .errors import ConfigError, ConvergenceWarning, PcapipeError
 
 __all__ = ["main", "build_parser"]
 
@@ -70,24 +72,37 @@ def _setup_logging(args) -> None:
 def _cmd_run(args) -> int:
     from .engine import run
 
-    failed = 0
+    if len(args.configs) == 1:
+        _report_run(run(args.configs[0], args.overrides, resume=args.resume))
+        return 0
+    shared = [o for o in args.overrides if o.partition("=")[0].strip() == "output.directory"]
+    if shared:
+        # Every config would write (or overwrite) the same run directory.
+        raise ConfigError(f"--set {shared[0]}: one output directory for {len(args.configs)} configs; "
+                          "set output.directory in each config file instead")
+    # Several configs: a bad one must not stop the others; the worst outcome
+    # decides the exit status (a bug, 1, outranks bad input, 2).
+    status, done = 0, 0
     for path in args.configs:
         try:
-            res = run(path, args.overrides, resume=args.resume)
+            _report_run(run(path, args.overrides, resume=args.resume))
+            done += 1
         except PcapipeError as e:
-            if len(args.configs) == 1:
-                raise
-            failed += 1
-            print(f"error: {path}: {e}", file=sys.stderr)
-            continue
-        m = res.manifest
-        state = "converged" if m["converged"] else "NOT all converged"
-        print(f"{res.directory}: {m['n_components']} components of {m['n_samples']} rows x "
-              f"{m['n_features']} features, {m['method']}, {state}, "
-              f"{m['timings']['total_seconds']:.1f} s")
-    if len(args.configs) > 1:
-        print(f"{len(args.configs) - failed} of {len(args.configs)} configs succeeded", file=sys.stderr)
-    return 2 if failed else 0
+            status = status or 2
+            _print_error(args, e, prefix=path)
+        except Exception as e:  # noqa: BLE001 - reported like main() does, then go on
+            status = 1
+            _print_error(args, e, prefix=path)
+    log.info("%d of %d configs succeeded", done, len(args.configs))
+    return status
+
+
+def _report_run(res) -> None:
+    m = res.manifest
+    state = "converged" if m["converged"] else "NOT all converged"
+    print(f"{res.directory}: {m['n_components']} components of {m['n_samples']} rows x "
+          f"{m['n_features']} features, {m['method']}, {state}, "
+          f"{m['timings']['total_seconds']:.1f} s")
 
 
 def _cmd_check(args) -> int:
@@ -133,24 +148,42 @@ _COMMANDS = {"run": _cmd_run, "check": _cmd_check, "describe": _cmd_describe,
              "project": _cmd_project, "report": _cmd_report}
 
 
+def _one_line(text: str) -> str:
+    # Library messages (pyarrow's especially) can span lines; the contract is one.
+    return " ".join(str(text).split())
+
+
+def _print_error(args, e: BaseException, prefix: str = "") -> None:
+    """The one ``error:`` line for ``e`` (after its traceback with --debug)."""
+    if getattr(args, "debug", False):
+        traceback.print_exception(e)
+    message = _one_line(e) or type(e).__name__
+    if not isinstance(e, PcapipeError):
+        message = (f"unexpected failure: {type(e).__name__}: {message} (run again with --debug for the "
+                   "traceback, and please report it)")
+    if prefix and not message.startswith(prefix):
+        message = f"{prefix}: {message}"
+    print(f"error: {message}", file=sys.stderr)
+
+
 def main(argv=None) -> int:
     """Entry point of the ``pcapipe`` command; returns the exit status."""
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args)
     try:
-        return _COMMANDS[args.command](args)
-    except PcapipeError as e:
-        if args.debug:
-            traceback.print_exc()
-        print(f"error: {e}", file=sys.stderr)
-        return 2
+        with warnings.catch_warnings():
+            # The engine logs each ConvergenceWarning already; once is enough.
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            return _COMMANDS[args.command](args)
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
-    except Exception as e:  # a bug: say so plainly, traceback on request
-        if args.debug:
-            traceback.print_exc()
-        print(f"error: unexpected failure: {type(e).__name__}: {e} (run again with --debug for the "
-              "traceback, and please report it)", file=sys.stderr)
-        return 1
+    except BrokenPipeError:
+        # the reader of our output went away (`pcapipe describe ... | head`): nothing is wrong
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
+    except Exception as e:  # PcapipeError: the user's to fix (2); anything else is a bug (1)
+        _print_error(args, e)
+        return 2 if isinstance(e, PcapipeError) else 1

@@ -77,7 +77,8 @@ def prepare(config, overrides=()) -> Prepared:
     writer.check()
     plan = make_plan(cfg)
     if plan.n_rows < 2:
-        raise InputError(f"input.paths: the input has {plan.n_rows} row(s); PCA needs at least 2")
+        raise InputError(f"input.paths: the input has {plan.n_rows} row(s) in {len(plan.files)} file(s); "
+                         "PCA needs at least 2 rows: add rows or files to input.paths")
     check_components(cfg.model.components, plan.n_rows, plan.n_features)
     return Prepared(cfg, plan, writer, {"plan_seconds": time.perf_counter() - t0})
 
@@ -103,7 +104,8 @@ def _moments_pass(p: Prepared, passes: DataPasses, full: bool) -> Moments:
         if mode == "impute-mean":
             m = passes.moments(full, mode, fill=m.valid_mean)
     if m.n < 2:
-        raise InputError(f"input: {m.n} row(s) left after input.missing = {mode!r}; PCA needs at least 2")
+        raise InputError(f"input: {m.n} row(s) left after input.missing = {mode!r}; PCA needs at least 2 rows: "
+                         'use input.missing = "impute-mean" or clean the data')
     return m
 
 
@@ -124,10 +126,12 @@ def _preprocessing(p: Prepared, m: Moments) -> tuple[Transform, np.ndarray, np.n
         scale_used = np.ones_like(std)
     missing = "none"
     if m.missing.any():
-        missing = "zero" if p.cfg.input.missing == "impute-mean" else "drop"
+        missing = "impute" if p.cfg.input.missing == "impute-mean" else "drop"
     shift = mean if p.cfg.model.center else np.zeros_like(mean)
     inv = (1.0 / scale_used) if p.cfg.model.scale else None
-    return Transform(shift, inv, missing), std, scale_used
+    # an imputed entry is the feature's mean: 0 once centered, but not without centering
+    fill = (mean - shift) * (inv if inv is not None else 1.0)
+    return Transform(shift, inv, missing, fill), std, scale_used
 
 
 def _solve(p: Prepared, op, rng, depth: int, callback=None, state=None) -> SolverResult:
@@ -270,7 +274,13 @@ class _Job:
             from .report import build_report
 
             t = time.perf_counter()
-            manifest["report"] = build_report(p.writer.partial, manifest)
+            try:
+                manifest["report"] = build_report(p.writer.partial, manifest)
+            except Exception as e:  # a plotting failure must not throw away a finished computation
+                log.warning("the report could not be built (%s: %s); the results are complete, "
+                            "rebuild it with: pcapipe report %s", type(e).__name__, e, p.writer.directory)
+                manifest["report"] = {"requested": True, "written": False,
+                                      "note": f"failed: {type(e).__name__}: {e}; rebuild with pcapipe report"}
             manifest["timings"]["report_seconds"] = round(time.perf_counter() - t, 4)
         else:
             manifest["report"] = {"requested": False, "written": False}
@@ -289,6 +299,7 @@ class _Job:
             return self.ckpt.moments()
         t = time.perf_counter()
         m = _moments_pass(self.p, passes, full=choice.method == "covariance")
+        _preprocessing(self.p, m)  # bad input (constant features) must fail before a checkpoint exists
         self.timings["moments_seconds"] = time.perf_counter() - t
         self._save("moments", choice, passes, moments=m)
         return m

@@ -10,14 +10,17 @@ from __future__ import annotations
 
 import fnmatch
 import glob
+import logging
 import os
 from dataclasses import dataclass
 
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .config import Config, resolve_path
+from .config import Config
 from .errors import InputError
+
+log = logging.getLogger("pcapipe")
 
 __all__ = ["FileInfo", "Block", "Plan", "make_plan", "resolve_inputs", "feature_names_for"]
 
@@ -84,25 +87,33 @@ class Plan:
 def resolve_inputs(patterns, base_dir: str) -> list[str]:
     """Resolve files, directories and globs to a sorted list of Parquet files.
 
-    Directories contribute every ``*.parquet`` file below them.  Each pattern
-    must match at least one file, so a typo is not silently ignored.
+    Directories, named or matched by a glob, contribute every ``*.parquet``
+    file below them (a dataset written as ``table.parquet/part-*.parquet`` is
+    a directory).  Each pattern must match at least one file, so a typo is
+    not silently ignored.
+
+    Raises
+    ------
+    InputError
+        A pattern matches no file.
     """
     found: set[str] = set()
     for pattern in patterns:
-        path = pattern if os.path.isabs(os.path.expanduser(pattern)) else os.path.join(base_dir, pattern)
-        path = os.path.expanduser(path)
-        if os.path.isdir(path):
-            hits = glob.glob(os.path.join(glob.escape(path), "**", "*.parquet"), recursive=True)
-        elif glob.has_magic(path):
-            hits = [h for h in glob.glob(path, recursive=True) if os.path.isfile(h)]
-        else:
-            hits = [path] if os.path.isfile(path) else []
-        if not hits:
+        path = os.path.join(base_dir, os.path.expanduser(pattern))
+        hits = glob.glob(path, recursive=True) if glob.has_magic(path) else [path]
+        files = []
+        for hit in hits:
+            if os.path.isdir(hit):
+                files += glob.glob(os.path.join(glob.escape(hit), "**", "*.parquet"), recursive=True)
+            elif os.path.isfile(hit):
+                files.append(hit)
+        files = [f for f in files if os.path.isfile(f)]
+        if not files:
             raise InputError(
-                f"input.paths: {pattern!r} matches no file (looked in {os.path.dirname(path) or '.'}); "
-                "check the path, relative paths resolve against the config file's directory"
+                f"input.paths: {pattern!r} matches no file (looked for {path}); check the path, or "
+                "write it relative to the config file's directory"
             )
-        found.update(os.path.abspath(h) for h in hits)
+        found.update(os.path.abspath(f) for f in files)
     return sorted(found)
 
 
@@ -116,43 +127,62 @@ def _open_footer(path: str) -> pq.ParquetFile:
 
 
 def _one_line(e: BaseException) -> str:
-    text = str(e).strip().splitlines()
-    return text[0] if text else type(e).__name__
+    return " ".join(str(e).split()) or type(e).__name__
 
 
 def _is_numeric(t: pa.DataType) -> bool:
     return pa.types.is_integer(t) or pa.types.is_floating(t)
 
 
+def _is_list(t: pa.DataType) -> bool:
+    return pa.types.is_fixed_size_list(t) or pa.types.is_list(t) or pa.types.is_large_list(t)
+
+
+def _not_numeric(path: str, name: str, t: pa.DataType) -> InputError:
+    if _is_list(t):
+        hint = "a list column is read with input.vector_column, not input.features"
+    elif pa.types.is_struct(t) or pa.types.is_map(t):
+        hint = "nested columns cannot be features; write their fields as numeric columns"
+    else:
+        hint = "cast it to a number, or leave it out of input.features (or add it to input.exclude)"
+    return InputError(f"{path}: column {name!r} has type {t}, not numeric; {hint}")
+
+
+def _first_vector(path: str, pf: pq.ParquetFile, column: str):
+    """The first row of ``column``, decoding one batch rather than a whole row group."""
+    for rg in range(pf.metadata.num_row_groups):
+        if pf.metadata.row_group(rg).num_rows:
+            batch = next(pf.iter_batches(batch_size=1, row_groups=[rg], columns=[column]))
+            return batch.column(0)[0]
+    raise InputError(f"{path}: input.vector_column {column!r} has no rows to take the vector length from; "
+                     "put a file with rows first in input.paths")
+
+
 def _vector_length(path: str, pf: pq.ParquetFile, column: str, schema: pa.Schema) -> int:
     t = schema.field(column).type
-    if pa.types.is_fixed_size_list(t):
-        inner = t.value_type
-        length = t.list_size
-    elif pa.types.is_list(t) or pa.types.is_large_list(t):
-        inner = t.value_type
-        length = -1
-    else:
+    if not _is_list(t):
         raise InputError(
             f"{path}: input.vector_column {column!r} has type {t}, expected a list of floats; "
-            "name a list column or use input.features for scalar columns"
+            "name a list column, or select scalar columns with input.features instead"
         )
-    if not _is_numeric(inner):
+    if not _is_numeric(t.value_type):
         raise InputError(
-            f"{path}: input.vector_column {column!r} holds {inner}, expected floats or integers"
+            f"{path}: input.vector_column {column!r} holds {t.value_type}, expected floats or integers; "
+            "cast the vectors to float when writing the file"
         )
-    if length < 0:
-        # Variable-length list: the length is checked on every row when the data
-        # are read; here take it from the first row with a tiny read.
-        first = pf.read_row_group(0, columns=[column]).column(0) if pf.metadata.num_row_groups else None
-        if first is None or len(first) == 0:
-            raise InputError(f"{path}: input.vector_column {column!r} has no rows to take its length from")
-        value = first[0]
+    if pa.types.is_fixed_size_list(t):
+        length = t.list_size
+    else:
+        # The length of a variable-length list is checked on every row when the
+        # data are read; here it is taken from the first row.
+        value = _first_vector(path, pf, column)
         if not value.is_valid:
-            raise InputError(f"{path}: input.vector_column {column!r} row 0 is null; every row needs a vector")
+            raise InputError(f"{path}: input.vector_column {column!r}: row 0 is null; every row needs a "
+                             "vector, drop or fill the null rows")
         length = len(value)
     if length < 1:
-        raise InputError(f"{path}: input.vector_column {column!r} holds empty vectors")
+        raise InputError(f"{path}: input.vector_column {column!r} holds empty vectors; name a column of "
+                         "non-empty vectors")
     return length
 
 
@@ -161,30 +191,43 @@ def feature_names_for(column: str, length: int) -> tuple[str, ...]:
     return tuple(f"{column}[{i}]" for i in range(length))
 
 
+def _matches(name: str, patterns) -> bool:
+    return any(fnmatch.fnmatchcase(name, p) for p in patterns)
+
+
+def _check_keep(cfg: Config, schema: pa.Schema, path: str) -> None:
+    for name in cfg.input.keep:
+        if schema.get_field_index(name) < 0:
+            raise InputError(f"{path}: input.keep column {name!r} does not exist; columns are "
+                             f"{_preview(schema.names)}; fix or remove it in input.keep")
+
+
 def _select_features(cfg: Config, schema: pa.Schema, path: str) -> tuple[str, ...]:
     keep = set(cfg.input.keep)
     names = [n for n in schema.names if n not in keep]
     if cfg.input.features:
-        chosen = [n for n in names if any(fnmatch.fnmatchcase(n, p) for p in cfg.input.features)]
         for p in cfg.input.features:
             if not any(fnmatch.fnmatchcase(n, p) for n in names):
-                raise InputError(
-                    f"{path}: input.features pattern {p!r} matches no column; columns are {_preview(names)}"
-                )
-        bad = [n for n in chosen if not _is_numeric(schema.field(n).type)]
-        if bad:
-            n = bad[0]
-            raise InputError(
-                f"{path}: column {n!r} has type {schema.field(n).type}, not numeric; "
-                "cast it, or leave it out with input.exclude"
-            )
+                held = [n for n in keep if fnmatch.fnmatchcase(n, p)]
+                why = (f"matches only input.keep column(s) {', '.join(held)}, which are never features"
+                       if held else f"matches no column; columns are {_preview(names)}")
+                raise InputError(f"{path}: input.features pattern {p!r} {why}; fix input.features")
+        chosen = [n for n in names if _matches(n, cfg.input.features)]
+        for n in chosen:
+            if not _is_numeric(schema.field(n).type):
+                raise _not_numeric(path, n, schema.field(n).type)
     else:
         chosen = [n for n in names if _is_numeric(schema.field(n).type)]
-    chosen = [n for n in chosen if not any(fnmatch.fnmatchcase(n, p) for p in cfg.input.exclude)]
+    for p in cfg.input.exclude:
+        if not any(fnmatch.fnmatchcase(n, p) for n in chosen):
+            # Not an error: one exclude list is often shared by several datasets.
+            log.warning("input.exclude pattern %r removes no feature column of %s", p, path)
+    chosen = [n for n in chosen if not _matches(n, cfg.input.exclude)]
     if not chosen:
         raise InputError(
             f"{path}: no numeric feature columns selected (input.features={list(cfg.input.features)}, "
-            f"input.exclude={list(cfg.input.exclude)}); columns are {_preview(schema.names)}"
+            f"input.exclude={list(cfg.input.exclude)}); columns are {_preview(schema.names)}; "
+            "name numeric columns in input.features"
         )
     return tuple(chosen)
 
@@ -195,26 +238,41 @@ def _preview(names, limit: int = 8) -> str:
     return shown + (f", ... ({len(names)} in all)" if len(names) > limit else "")
 
 
-def _check_file_schema(path, schema, columns, keep, types, vector_column):
-    for name in (*columns, *keep):
+def _same_kind(a: pa.DataType, b: pa.DataType) -> bool:
+    """Types that decode alike: any two numeric types, two string types, or lists of numbers."""
+    if _is_numeric(a) and _is_numeric(b):
+        return True
+    text = (pa.types.is_string, pa.types.is_large_string, pa.types.is_string_view)
+    if any(f(a) for f in text) and any(f(b) for f in text):
+        return True
+    if _is_list(a) and _is_list(b):
+        fixed = [t.list_size for t in (a, b) if pa.types.is_fixed_size_list(t)]
+        return len(set(fixed)) <= 1 and _is_numeric(a.value_type) and _is_numeric(b.value_type)
+    return a == b
+
+
+def _check_file_schema(path: str, schema: pa.Schema, first: str, types: dict, length: int) -> None:
+    """Every file needs the first file's columns, with types that decode alike."""
+    for name, want in types.items():
         if schema.get_field_index(name) < 0:
-            role = "keep" if name in keep else "feature"
             raise InputError(
-                f"{path}: {role} column {name!r} is missing; every input file needs the same columns"
+                f"{path}: column {name!r} is missing, but {first} has it; every input file needs the "
+                "same columns: rewrite this file or leave it out of input.paths"
             )
-    for name in columns:
         t = schema.field(name).type
-        if t != types[name]:
-            ok = (_is_numeric(t) and _is_numeric(types[name])) if not vector_column else False
-            if not ok:
-                raise InputError(
-                    f"{path}: column {name!r} has type {t}, but the first file has {types[name]}; "
-                    "make the types agree across files"
-                )
+        size_ok = not (length and pa.types.is_fixed_size_list(t) and t.list_size != length)
+        if not (_same_kind(t, want) and size_ok):
+            raise InputError(
+                f"{path}: column {name!r} has type {t}, but {first} has {want}; make the types agree "
+                "across files (rewrite this file or leave it out of input.paths)"
+            )
 
 
 def make_plan(cfg: Config) -> Plan:
     """Resolve the inputs of ``cfg`` and check every file's schema.
+
+    Only footers are read (and, for a variable-length vector column, the
+    first row, to learn the vector length).
 
     Raises
     ------
@@ -225,11 +283,14 @@ def make_plan(cfg: Config) -> Plan:
     paths = resolve_inputs(cfg.input.paths, cfg.base_dir)
     first = _open_footer(paths[0])
     schema0 = first.schema_arrow
+    _check_keep(cfg, schema0, paths[0])
     vec = cfg.input.vector_column
+    length = 0
     if vec:
         if schema0.get_field_index(vec) < 0:
             raise InputError(
-                f"{paths[0]}: input.vector_column {vec!r} is not a column; columns are {_preview(schema0.names)}"
+                f"{paths[0]}: input.vector_column {vec!r} is not a column; columns are "
+                f"{_preview(schema0.names)}; fix input.vector_column"
             )
         length = _vector_length(paths[0], first, vec, schema0)
         columns: tuple[str, ...] = (vec,)
@@ -239,11 +300,11 @@ def make_plan(cfg: Config) -> Plan:
         columns = _select_features(cfg, schema0, paths[0])
         features = columns
         itemsize = max(schema0.field(c).type.bit_width // 8 for c in columns)
-    types = {c: schema0.field(c).type for c in columns}
+    types = {c: schema0.field(c).type for c in (*columns, *cfg.input.keep)}
     files, blocks = [], []
     for fi, path in enumerate(paths):
         pf = first if fi == 0 else _open_footer(path)
-        _check_file_schema(path, pf.schema_arrow, columns, cfg.input.keep, types, vec)
+        _check_file_schema(path, pf.schema_arrow, paths[0], types, length)
         md = pf.metadata
         rg_rows = tuple(md.row_group(i).num_rows for i in range(md.num_row_groups))
         st = os.stat(path)

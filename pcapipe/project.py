@@ -2,138 +2,226 @@
 
 The same decode and transform as the scores pass (:mod:`pcapipe.reader`,
 :class:`pcapipe.tasks.Transform`), so projecting the training rows gives the
-stored scores.
+stored scores.  Parquet inputs are streamed in batches inside one dask task
+per file, so memory is bounded by a batch of features plus the file's scores
+(``k`` columns), never by the file's feature data.
 """
 
 from __future__ import annotations
 
 import os
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .errors import InputError
+from .errors import InputError, OutputError
 from .plan import resolve_inputs
-from .reader import batch_to_array
+from .reader import ReadSpec, batch_to_array
+from .tasks import Transform, score_rows
 
-__all__ = ["project_frame", "project_paths", "project_to_directory"]
+__all__ = ["Projector", "projector_for", "project_frame", "project_paths", "project_to_directory"]
+
+_BATCH_BYTES = 32 << 20  # decoded features per batch, as in the run itself
+
+_MISSING = {"fail": "fail", "drop-rows": "drop", "impute-mean": "impute"}
 
 
-def _check_columns(result, names, where: str) -> None:
-    spec = result._spec()
-    missing = [c for c in spec.columns if c not in names]
+@dataclass(frozen=True)
+class Projector:
+    """Everything a task needs to score rows, as plain values (ships to any dask worker)."""
+
+    spec: ReadSpec
+    transform: Transform
+    loadings: np.ndarray
+    names: tuple[str, ...]
+
+
+def projector_for(result) -> Projector:
+    """The stored preprocessing (shift, scale, missing rule) and loadings of ``result``."""
+    m = result.manifest
+    cfg_in, model = m["config"]["input"], m["config"]["model"]
+    f = result.features
+    d = len(f)
+    vec = cfg_in.get("vector_column", "")
+    columns = (vec,) if vec else tuple(result.loadings.index)
+    batch = int(max(256, _BATCH_BYTES // (8 * max(1, d))))
+    spec = ReadSpec(columns, vec, d, batch, tuple(cfg_in.get("keep", ())))
+    shift = f["mean"].to_numpy() if model.get("center", True) else np.zeros(d)
+    inv = 1.0 / f["scale_used"].to_numpy() if model.get("scale", False) else None
+    # impute-mean puts the mean in place of a gap; after centring that is 0, without centring it is not
+    fill = (f["mean"].to_numpy() - shift) * (inv if inv is not None else 1.0)
+    transform = Transform(shift, inv, _MISSING[cfg_in.get("missing", "fail")], fill)
+    return Projector(spec, transform, np.ascontiguousarray(result.loadings.to_numpy()),
+                     tuple(result.loadings.columns))
+
+
+def _is_numeric(t: pa.DataType) -> bool:
+    return pa.types.is_integer(t) or pa.types.is_floating(t)
+
+
+def _check_schema(pr: Projector, schema: pa.Schema, where: str) -> None:
+    """Every feature column present, with a numeric type (a list of numbers for a vector column)."""
+    missing = [c for c in pr.spec.columns if schema.get_field_index(c) < 0]
     if missing:
-        shown = ", ".join(missing[:5]) + (f" and {len(missing) - 5} more" if len(missing) > 5 else "")
-        raise InputError(f"{where}: feature column(s) {shown} of the run are missing; "
-                         "projection needs every feature the run was fitted on")
-
-
-def _scores_of(result, table: pa.Table, where: str) -> np.ndarray:
-    t = result._transform()
-    x = batch_to_array(table, result._spec(), where, t.shift, t.inv_scale)
-    bad = ~np.isfinite(x)
-    ok = None
-    if bad.any():
-        if t.missing == "fail":
-            col = result._spec().columns[0] if result._spec().vector_column else \
-                result._spec().columns[int(np.flatnonzero(bad.any(axis=0))[0])]
-            raise InputError(f"{where}: column {col!r} has missing or non-finite values; the run used "
-                             'input.missing = "fail"')
-        if t.missing == "zero":
-            x[bad] = 0.0
+        shown = ", ".join(repr(c) for c in missing[:5]) + (f" and {len(missing) - 5} more" if len(missing) > 5 else "")
+        raise InputError(f"{where}: feature column(s) {shown} of the run are missing ({len(missing)} of "
+                         f"{len(pr.spec.columns)}); projection needs every column the run was fitted on")
+    for name in pr.spec.columns:
+        t = schema.field(name).type
+        if pr.spec.vector_column:
+            ok = (pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t)) \
+                and _is_numeric(t.value_type)
         else:
-            ok = ~bad.any(axis=1)
-            x = x[ok]
-    s = x @ result.loadings.to_numpy()
-    if ok is not None:
-        full = np.full((ok.size, s.shape[1]), np.nan)
-        full[ok] = s
-        s = full
-    return s
+            ok = _is_numeric(t)
+        if not ok:
+            need = "a list of numbers" if pr.spec.vector_column else "a number type"
+            raise InputError(f"{where}: column {name!r} has type {t}; the run needs {need} there")
 
 
-def _frame(result, table: pa.Table, keep, where: str) -> pd.DataFrame:
-    s = _scores_of(result, table, where)
-    out = pd.DataFrame(s, columns=list(result.loadings.columns))
-    for name in reversed(keep):
-        out.insert(0, name, table.column(name).to_pandas())
-    return out
+def _scores_of(pr: Projector, batch, where: str) -> np.ndarray:
+    """Scores of one batch; rows dropped for missing values get NaN (row i stays row i)."""
+    t = pr.transform
+    x = batch_to_array(batch, pr.spec, where, t.shift, t.inv_scale)
+    try:
+        return score_rows(x, t, pr.loadings)
+    except ValueError as e:
+        j = e.args[0]
+        col = pr.spec.columns[0] if pr.spec.vector_column else pr.spec.columns[j]
+        raise InputError(f"{where}: column {col!r} has missing or non-finite values; the run used "
+                         'input.missing = "fail", so rows with gaps cannot be scored') from e
 
 
-def _keep_for(result, names, keep):
+def _keep_for(pr: Projector, names, keep) -> list[str]:
     if keep is None:
-        return [c for c in result._spec().keep if c in names]
+        return [c for c in pr.spec.keep if c in names]
+    keep = [keep] if isinstance(keep, str) else list(keep)
     missing = [c for c in keep if c not in names]
     if missing:
-        raise InputError(f"keep column {missing[0]!r} is not in the data to project")
-    return list(keep)
+        raise InputError(f"project: keep column {missing[0]!r} is not in the data to project; "
+                         f"columns are {', '.join(map(str, list(names)[:10]))}")
+    return keep
 
 
 def project_frame(result, df: pd.DataFrame, keep=None) -> pd.DataFrame:
-    """Project the rows of a DataFrame; the index is kept."""
-    _check_columns(result, list(df.columns), "project")
-    keep = _keep_for(result, list(df.columns), keep)
-    cols = list(dict.fromkeys([*result._spec().columns, *keep]))
-    table = pa.Table.from_pandas(df[cols], preserve_index=False)
-    out = _frame(result, table, keep, "project")
-    out.index = df.index
+    """Project the rows of a DataFrame; its index is kept, keep columns are copied as they are."""
+    pr = projector_for(result)
+    try:
+        table = pa.Table.from_pandas(df[[c for c in pr.spec.columns if c in df.columns]], preserve_index=False)
+    except (pa.ArrowException, TypeError, ValueError) as e:
+        raise InputError(f"project: the feature columns cannot be read as numbers ({e})") from e
+    _check_schema(pr, table.schema, "project")
+    keep = _keep_for(pr, list(df.columns), keep)
+    s = _scores_of(pr, table, "project")
+    out = pd.DataFrame(s, index=df.index, columns=list(pr.names))
+    for name in reversed(keep):
+        out.insert(0, name, df[name])
     return out
 
 
-def _project_file(result, path: str, keep) -> pd.DataFrame:
-    spec = result._spec()
-    cols = list(dict.fromkeys([*spec.columns, *keep]))
+def _out_schema(pr: Projector, schema: pa.Schema, keep) -> pa.Schema:
+    return pa.schema([*(schema.field(c) for c in keep), *(pa.field(n, pa.float64()) for n in pr.names)])
+
+
+def _iter_tables(pr: Projector, path: str, keep):
+    """Stream one file: an Arrow table (keep columns + scores) per decoded batch."""
     pf = pq.ParquetFile(path)
-    parts = [_frame(result, pa.Table.from_batches([b]), keep, path)
-             for b in pf.iter_batches(batch_size=spec.batch_rows, columns=cols)]
-    if not parts:
-        return _frame(result, pf.schema_arrow.empty_table().select(cols), keep, path)
-    return pd.concat(parts, ignore_index=True)
+    out_schema = _out_schema(pr, pf.schema_arrow, keep)
+    cols = list(dict.fromkeys([*pr.spec.columns, *keep]))
+    try:
+        for batch in pf.iter_batches(batch_size=pr.spec.batch_rows, columns=cols, use_threads=False):
+            s = _scores_of(pr, batch, path)
+            arrays = [batch.column(c) for c in keep] + [pa.array(s[:, j]) for j in range(s.shape[1])]
+            yield pa.Table.from_arrays(arrays, schema=out_schema)
+    except pa.ArrowException as e:
+        raise InputError(f"{path}: cannot be decoded ({e}); the file may be truncated, re-copy it") from e
+
+
+def _project_file(pr: Projector, path: str, keep) -> pd.DataFrame:
+    tables = list(_iter_tables(pr, path, keep))
+    if not tables:
+        return _out_schema(pr, pq.ParquetFile(path).schema_arrow, keep).empty_table().to_pandas()
+    return pa.concat_tables(tables).to_pandas()
 
 
 def _paths(data) -> list[str]:
     patterns = [data] if isinstance(data, (str, os.PathLike)) else list(data)
-    return resolve_inputs([os.fspath(p) for p in patterns], os.getcwd())
+    if not patterns:
+        raise InputError("project: no input given; pass Parquet files, directories or globs")
+    found = []
+    for p in patterns:
+        try:
+            found += resolve_inputs([os.fspath(p)], os.getcwd())
+        except InputError as e:
+            raise InputError(f"project: {os.fspath(p)!r} matches no Parquet file (relative paths resolve "
+                             f"against {os.getcwd()})") from e
+    return list(dict.fromkeys(found))
 
 
-def _checked_paths(result, data):
+def _checked_paths(pr: Projector, data) -> tuple[list[str], list[str]]:
+    """Resolve and check every file's footer before any task runs; returns (paths, common columns)."""
     paths = _paths(data)
+    common = None
     for path in paths:
         try:
-            names = pq.ParquetFile(path).schema_arrow.names
+            schema = pq.ParquetFile(path).schema_arrow
         except (OSError, pa.ArrowException) as e:
             raise InputError(f"{path}: not a readable Parquet file ({e})") from e
-        _check_columns(result, names, path)
-    return paths, names
+        _check_schema(pr, schema, path)
+        common = [c for c in (common if common is not None else schema.names) if c in schema.names]
+    return paths, common
 
 
 def project_paths(result, data, keep=None):
-    """Project Parquet files lazily: a dask DataFrame, one partition per file."""
+    """Project Parquet files lazily: a dask DataFrame with one partition per file, row order kept."""
     import dask
     import dask.dataframe as dd
 
-    paths, names = _checked_paths(result, data)
-    keep = _keep_for(result, names, keep)
-    meta = _project_file(result, paths[0], keep).iloc[:0]
-    parts = [dask.delayed(_project_file)(result, p, keep) for p in paths]
+    pr = projector_for(result)
+    paths, names = _checked_paths(pr, data)
+    keep = _keep_for(pr, names, keep)
+    meta = _out_schema(pr, pq.ParquetFile(paths[0]).schema_arrow, keep).empty_table().to_pandas()
+    parts = [dask.delayed(_project_file)(pr, p, keep)
+             for i, p in enumerate(paths)]
     return dd.from_delayed(parts, meta=meta, verify_meta=False)
 
 
-def project_to_directory(result, data, out_dir: str, keep=None) -> list[str]:
-    """Write ``part-NNNNN.parquet`` under ``out_dir`` (one per input file), atomically per part."""
+def _write_part(pr: Projector, path: str, keep, target: str) -> str:
+    """Stream one file's scores into ``target`` (written under a temporary name, then renamed)."""
+    tmp = target + ".tmp"
+    schema = _out_schema(pr, pq.ParquetFile(path).schema_arrow, keep)
+    with pq.ParquetWriter(tmp, schema, compression="zstd") as writer:
+        for table in _iter_tables(pr, path, keep):
+            writer.write_table(table)
+    os.replace(tmp, target)
+    return target
+
+
+def project_to_directory(result, data, out_dir: str, keep=None, scheduler: str = "threads") -> list[str]:
+    """Write ``part-NNNNN.parquet`` under ``out_dir``, one per input file in sorted path order.
+
+    Raises
+    ------
+    InputError
+        An input matches nothing, is not Parquet, or lacks a feature column.
+    OutputError
+        ``out_dir`` already holds part files (they would mix with the new
+        ones), or cannot be created.
+    """
     import dask
 
-    paths, names = _checked_paths(result, data)
-    keep = _keep_for(result, names, keep)
-    os.makedirs(out_dir, exist_ok=True)
-
-    def one(i, path):
-        target = os.path.join(out_dir, f"part-{i:05d}.parquet")
-        pq.write_table(pa.Table.from_pandas(_project_file(result, path, keep), preserve_index=False),
-                       target + ".tmp", compression="zstd")
-        os.replace(target + ".tmp", target)
-        return target
-
-    return list(dask.compute(*[dask.delayed(one)(i, p) for i, p in enumerate(paths)], scheduler="threads"))
+    pr = projector_for(result)
+    paths, names = _checked_paths(pr, data)
+    keep = _keep_for(pr, names, keep)
+    if os.path.isdir(out_dir) and any(n.startswith("part-") and n.endswith(".parquet") for n in os.listdir(out_dir)):
+        raise OutputError(f"--out: {out_dir} already holds part-*.parquet files; remove them or choose "
+                          "another directory")
+    try:
+        os.makedirs(out_dir, exist_ok=True)
+    except OSError as e:
+        raise OutputError(f"--out: cannot create {out_dir}: {e.strerror}") from e
+    tasks = [dask.delayed(_write_part)(pr, p, keep, os.path.join(out_dir, f"part-{i:05d}.parquet"))
+             for i, p in enumerate(paths)]
+    return list(dask.compute(*tasks, scheduler=scheduler))

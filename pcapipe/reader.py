@@ -12,6 +12,8 @@ buffer without per-row Python work.  An optional affine transform
 
 from __future__ import annotations
 
+import functools
+import os
 from dataclasses import dataclass
 from typing import Iterator
 
@@ -50,19 +52,26 @@ def _column_into(out: np.ndarray, arr: pa.ChunkedArray | pa.Array, shift, inv_sc
             out *= inv_scale
 
 
-def _vector_array(arr, n_features: int, where: str) -> np.ndarray:
+def _vector_array(arr, n_features: int, where: str, first_row: int) -> np.ndarray:
+    """Reshape a list column into ``(n, d)``; ``where`` names file and column for errors."""
     if isinstance(arr, pa.ChunkedArray):
         arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
     if arr.null_count:
-        row = int(pc.index(pc.is_null(arr), True).as_py())
-        raise InputError(f"{where}: vector column row {row} is null; every row needs a vector (drop or fill it)")
-    if not pa.types.is_fixed_size_list(arr.type):
+        row = first_row + int(pc.index(pc.is_null(arr), True).as_py())
+        raise InputError(f"{where}: row {row} is null; every row needs a vector: drop or fill the "
+                         "null rows")
+    if pa.types.is_fixed_size_list(arr.type):
+        if arr.type.list_size != n_features:
+            raise InputError(f"{where}: holds vectors of {arr.type.list_size} values, expected "
+                             f"{n_features}; every vector needs the same length")
+    else:
         lengths = pc.list_value_length(arr).to_numpy(zero_copy_only=False)
         bad = np.flatnonzero(lengths != n_features)
         if bad.size:
             raise InputError(
-                f"{where}: vector column row {int(bad[0])} has {int(lengths[bad[0]])} values, "
-                f"expected {n_features} like the first row; the vectors must all have one length"
+                f"{where}: row {first_row + int(bad[0])} has {int(lengths[bad[0]])} values, expected "
+                f"{n_features} like the first row; every vector needs the same length: fix or drop "
+                "the ragged rows"
             )
     flat = arr.flatten()
     if flat.null_count:
@@ -71,7 +80,8 @@ def _vector_array(arr, n_features: int, where: str) -> np.ndarray:
     return values.reshape(len(arr), n_features)
 
 
-def batch_to_array(batch, spec: ReadSpec, where: str, shift=None, inv_scale=None) -> np.ndarray:
+def batch_to_array(batch, spec: ReadSpec, where: str, shift=None, inv_scale=None,
+                   first_row: int = 0) -> np.ndarray:
     """Decode a record batch (or table) to an ``(n, d)`` float64 array.
 
     Parameters
@@ -80,20 +90,28 @@ def batch_to_array(batch, spec: ReadSpec, where: str, shift=None, inv_scale=None
         Holds the columns of ``spec``.
     spec : ReadSpec
     where : str
-        File (and block) named in error messages.
+        The file (or frame) named in error messages.
     shift, inv_scale : ndarray of shape (d,), optional
         When given, the result is ``(x - shift) * inv_scale``, computed in the
         same write as the decode.
+    first_row : int
+        Row number of the batch's first row in its file, for error messages.
 
     Returns
     -------
     ndarray
         float64, Fortran-ordered for scalar columns, C-ordered for a vector
         column.  Missing values (nulls) are NaN.
+
+    Raises
+    ------
+    InputError
+        A vector column has a null row or a vector of the wrong length.
     """
     n = batch.num_rows
     if spec.vector_column:
-        x = _vector_array(batch.column(spec.vector_column), spec.n_features, where)
+        x = _vector_array(batch.column(spec.vector_column), spec.n_features,
+                          f"{where}: column {spec.vector_column!r}", first_row)
         if x.dtype != np.float64 or shift is not None:
             x64 = np.empty(x.shape, dtype=np.float64)
             if shift is None:
@@ -120,11 +138,25 @@ def table_to_array(table: pa.Table, spec: ReadSpec, where: str, shift=None, inv_
     return batch_to_array(table, spec, where, shift, inv_scale)
 
 
+def _one_line(e: BaseException) -> str:
+    text = " ".join(str(e).split())
+    return text or type(e).__name__
+
+
+@functools.lru_cache(maxsize=256)
+def _row_group_starts(path: str, mtime_ns: int) -> tuple[int, ...]:
+    """First row of each row group, read once per file and process (not once per block)."""
+    md = pq.read_metadata(path)
+    sizes = [md.row_group(i).num_rows for i in range(md.num_row_groups)]
+    return tuple(int(v) for v in np.cumsum([0] + sizes[:-1]))
+
+
 def _open(path: str) -> pq.ParquetFile:
     try:
         return pq.ParquetFile(path)
     except (OSError, pa.ArrowException) as e:
-        raise InputError(f"{path}: cannot be read as Parquet ({e}); re-copy the file") from e
+        raise InputError(f"{path}: cannot be read as Parquet ({_one_line(e)}); re-copy the file, or "
+                         "leave it out of input.paths") from e
 
 
 def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=None,
@@ -133,19 +165,32 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
 
     Yields ``(x, keep_batch)`` where ``keep_batch`` holds the keep columns
     when ``with_keep`` is true (else None).
+
+    Raises
+    ------
+    InputError
+        The file cannot be opened or decoded (truncated, corrupt pages), lost
+        a column since it was planned, or holds a bad vector.
     """
     pf = _open(path)
     columns = list(spec.columns) + (list(spec.keep) if with_keep else [])
-    where = f"{path} (row group {row_group})"
+    gone = [c for c in columns if pf.schema_arrow.get_field_index(c) < 0]
+    if gone:
+        raise InputError(f"{path}: column {gone[0]!r} is gone; the file changed after the run was "
+                         "planned, start the run again")
     try:
+        # Only vector errors name a row, so scalar blocks skip the row-group offsets.
+        row = _row_group_starts(path, os.stat(path).st_mtime_ns)[row_group] if spec.vector_column else 0
         batches = pf.iter_batches(batch_size=spec.batch_rows, row_groups=[row_group],
                                   columns=columns, use_threads=False)
         for batch in batches:
-            x = batch_to_array(batch, spec, where, shift, inv_scale)
+            x = batch_to_array(batch, spec, path, shift, inv_scale, first_row=row)
+            row += batch.num_rows
             keep = batch.select(list(spec.keep)) if with_keep else None
             yield x, keep
-    except pa.ArrowException as e:
-        raise InputError(f"{where}: cannot be decoded ({e}); the file may be truncated, re-copy it") from e
+    except (OSError, pa.ArrowException) as e:
+        raise InputError(f"{path} (row group {row_group}): cannot be decoded ({_one_line(e)}); the file "
+                         "may be truncated or corrupt: re-copy it, or leave it out of input.paths") from e
 
 
 def iter_file(path: str, row_groups, spec: ReadSpec, shift=None, inv_scale=None,

@@ -9,6 +9,7 @@ clear error instead of wrong numbers.
 from __future__ import annotations
 
 import glob
+import html
 import json
 import os
 from functools import cached_property
@@ -18,14 +19,15 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .errors import InputError, RunDirectoryError
-from .plan import feature_names_for
-from .reader import ReadSpec, batch_to_array
+from .errors import RunDirectoryError
 from .writer import FORMAT_VERSION
 
 __all__ = ["Result", "load"]
 
 _FILES = ("manifest.json", "components.parquet", "loadings.parquet", "features.parquet")
+_SUMMARY = ["explained_variance", "explained_variance_ratio", "cumulative_ratio", "residual_norm", "std_error"]
+_REPR_ROWS = 5  # components listed in the one-line repr
+_HTML_ROWS = 20  # components shown in the notebook table
 
 
 def load(directory) -> "Result":
@@ -144,23 +146,6 @@ class Result:
             raise RunDirectoryError(f"{self.directory}: this run was made with output.scores = false")
         return dd.read_parquet(sorted(glob.glob(os.path.join(self.directory, "scores", "part-*.parquet"))))
 
-    def _spec(self, n_rows_hint: int = 65536) -> ReadSpec:
-        cfg = self.manifest["config"]["input"]
-        vec = cfg.get("vector_column", "")
-        feats = list(self.loadings.index)
-        columns = (vec,) if vec else tuple(feats)
-        return ReadSpec(columns, vec, len(feats), n_rows_hint, tuple(cfg.get("keep", ())))
-
-    def _transform(self):
-        from .tasks import Transform
-
-        model = self.manifest["config"]["model"]
-        f = self.features
-        shift = f["mean"].to_numpy() if model.get("center", True) else np.zeros(len(f))
-        inv = 1.0 / f["scale_used"].to_numpy() if model.get("scale", False) else None
-        mode = {"fail": "fail", "drop-rows": "drop", "impute-mean": "zero"}[self.manifest["config"]["input"]["missing"]]
-        return Transform(shift, inv, mode)
-
     def project(self, data, keep=None):
         """Scores of new rows with the stored preprocessing and loadings.
 
@@ -175,7 +160,14 @@ class Result:
 
         Returns
         -------
-        pandas.DataFrame for a DataFrame; dask DataFrame for paths.
+        pandas.DataFrame (same index) for a DataFrame; for paths a dask
+        DataFrame with one partition per file, rows in file order.
+
+        Raises
+        ------
+        InputError
+            A feature column is missing or not numeric, a path matches
+            nothing, or a value is missing and the run used ``missing = "fail"``.
         """
         from .project import project_frame, project_paths
 
@@ -183,14 +175,75 @@ class Result:
             return project_frame(self, data, keep)
         return project_paths(self, data, keep)
 
+    # -- derived tables ------------------------------------------------------
+    @cached_property
+    def correlation_loadings(self) -> pd.DataFrame:
+        """Pearson correlation between each input feature and each component's scores.
+
+        Index = feature, columns PC1..PCk, values in [-1, 1].  For a
+        centred PCA with eigenpair ``(lambda_i, v_i)`` of the covariance of the
+        analysed data ``a = x / scale_used``, ``cov(a_j, s_i) = lambda_i v_ji``
+        and ``var(s_i) = lambda_i``, so the correlation is
+        ``v_ji * sqrt(lambda_i) * scale_used_j / std_j``: ``v_ji sqrt(lambda_i)``
+        for a correlation PCA, ``v_ji sqrt(lambda_i) / std_j`` for a covariance
+        PCA (Jolliffe 2002, *Principal Component Analysis*, 2nd ed., sec. 2.3).
+        Without centring the vectors are eigenvectors of the second-moment
+        matrix ``M = C + n/(n-1) mu mu^T``, and the same covariances follow from
+        ``C v_i = lambda_i v_i - n/(n-1) mu (mu . v_i)``.  A constant feature
+        has no correlation (NaN).
+        """
+        m, f = self.manifest, self.features
+        v = self.loadings.to_numpy()
+        lam = self.explained_variance.to_numpy()
+        scale_used = f["scale_used"].to_numpy()
+        sd = f["std"].to_numpy() / scale_used  # std of the analysed feature
+        cov = v * lam
+        var_s = lam.copy()
+        if not m["config"]["model"].get("center", True):
+            n = int(m["n_samples"])
+            mu = f["mean"].to_numpy() / scale_used
+            proj = mu @ v
+            cov = cov - (n / (n - 1)) * np.outer(mu, proj)
+            var_s = var_s - (n / (n - 1)) * proj**2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = cov / np.outer(sd, np.sqrt(np.maximum(var_s, 0.0)))
+        r[~np.isfinite(r)] = np.nan
+        return pd.DataFrame(np.clip(r, -1.0, 1.0), index=self.loadings.index, columns=self.loadings.columns)
+
     # -- display -------------------------------------------------------------
     def summary(self) -> pd.DataFrame:
-        cols = ["explained_variance", "explained_variance_ratio", "cumulative_ratio", "residual_norm", "std_error"]
-        return self.components[cols]
+        """The spectrum: variance, ratio, cumulative ratio, residual and std error per component."""
+        return self.components[_SUMMARY]
+
+    def _headline(self) -> str:
+        m = self.manifest
+        kind = "correlation" if m["config"]["model"].get("scale") else "covariance"
+        state = "converged" if m["converged"] else "NOT all converged"
+        return (f"{m['n_samples']} rows x {m['n_features']} features, {m['n_components']} components "
+                f"({kind} PCA, {m['method']}, {state})")
 
     def __repr__(self) -> str:
-        m = self.manifest
-        head = (f"pcapipe.Result({self.directory!r}: {m['n_samples']} rows x {m['n_features']} features, "
-                f"{m['n_components']} components, method {m['method']}, "
-                f"{'converged' if m['converged'] else 'NOT converged'})")
-        return head + "\n" + self.summary().to_string(float_format=lambda v: f"{v:.6g}")
+        c = self.components
+        shown = c.head(_REPR_ROWS)
+        spectrum = ", ".join(f"{name} {r:.1%}" for name, r in shown["explained_variance_ratio"].items())
+        if len(c) > _REPR_ROWS:
+            spectrum += f", ... ({len(c) - _REPR_ROWS} more)"
+        total = c["cumulative_ratio"].iloc[-1] if len(c) else float("nan")
+        return (f"<pcapipe.Result {self.directory!r}: {self._headline()}; "
+                f"variance explained {spectrum}; total {total:.1%}>")
+
+    def _repr_html_(self) -> str:
+        """A spectrum table for Jupyter: the headline and one row per component (at most 20)."""
+        c = self.summary().head(_HTML_ROWS)
+        head = "".join(f"<th>{html.escape(n)}</th>" for n in ("component", "variance", "ratio", "cumulative",
+                                                              "residual", "std error"))
+        rows = []
+        for name, r in c.iterrows():
+            cells = (f"{r.iloc[0]:.6g}", f"{r.iloc[1]:.2%}", f"{r.iloc[2]:.2%}", f"{r.iloc[3]:.2e}",
+                     f"{r.iloc[4]:.4g}")
+            rows.append(f"<tr><th>{html.escape(str(name))}</th>" + "".join(f"<td>{x}</td>" for x in cells) + "</tr>")
+        more = len(self.components) - len(c)
+        tail = f"<p>... {more} more components: see <code>.components</code></p>" if more > 0 else ""
+        return (f"<div class=\"pcapipe-result\"><p><b>pcapipe.Result</b> <code>{html.escape(self.directory)}"
+                f"</code><br>{html.escape(self._headline())}</p><table><thead><tr>{head}</tr></thead><tbody>"
+                + "".join(rows) + f"</tbody></table>{tail}</div>")

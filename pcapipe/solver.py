@@ -238,6 +238,8 @@ class BlockPowerSolver:
         st.iterations += 1
         n_lock = self._lock(theta, u, rnorm, ref)
         theta, u, cu, rnorm, res = theta[n_lock:], u[:, n_lock:], cu[:, n_lock:], rnorm[n_lock:], res[:, n_lock:]
+        # The basis must not hold the pairs just locked, or result() would count them twice.
+        st.basis, st.image = u, cu
         remaining = self.k - st.locked.shape[1]
         if remaining == 0:
             return True

@@ -19,7 +19,7 @@ import pyarrow.parquet as pq
 from .moments import Moments, batch_moments, tree_merge
 from .reader import ReadSpec, iter_block
 
-__all__ = ["Transform", "moments_task", "product_task", "scores_task", "decode_task",
+__all__ = ["Transform", "prepare_rows", "score_rows", "moments_task", "product_task", "scores_task", "decode_task",
            "product_cached_task", "add", "limit_blas", "probe_task"]
 
 _blas_limit = None
@@ -39,28 +39,48 @@ def limit_blas(threads: int) -> None:
 class Transform:
     """Preprocessing applied to each row: ``(x - shift) * inv_scale``, then missing handling.
 
-    ``missing`` is what to do with a non-finite value: ``"zero"`` (the mean,
-    after centering: impute-mean), ``"drop"`` (the row is left out of sums and
-    gets NaN scores), or ``"none"`` (the moments pass proved there are none).
+    ``missing`` says what to do with a non-finite value: ``"impute"`` (put
+    ``fill``, the feature's mean after the transform: 0 when centered),
+    ``"drop"`` (the row is left out of sums and gets NaN scores), ``"fail"``
+    (an error, for projecting new rows), or ``"none"`` (the moments pass
+    proved there are none, so no check is spent).
     """
 
     shift: np.ndarray
     inv_scale: np.ndarray | None
     missing: str
+    fill: np.ndarray | None = None
 
 
-def _prepare(x: np.ndarray, t: Transform) -> tuple[np.ndarray, np.ndarray | None]:
-    """Apply the missing rule to a transformed batch; returns (rows used, mask of rows used)."""
+def prepare_rows(x: np.ndarray, t: Transform) -> tuple[np.ndarray, np.ndarray | None]:
+    """Apply the missing rule to a transformed batch.
+
+    Returns the rows to use and, when rows were dropped, the mask of the rows
+    kept (None otherwise).  Raises ``ValueError`` with the first offending
+    column index under ``"fail"`` (the caller names the column).
+    """
     if t.missing == "none":
         return x, None
     bad = ~np.isfinite(x)
     if not bad.any():
         return x, None
-    if t.missing == "zero":
-        x[bad] = 0.0
-        return x, None
+    if t.missing == "fail":
+        raise ValueError(int(np.flatnonzero(bad.any(axis=0))[0]))
+    if t.missing == "impute":
+        return np.where(bad, t.fill, x), None
     ok = ~bad.any(axis=1)
     return x[ok], ok
+
+
+def score_rows(x: np.ndarray, t: Transform, loadings: np.ndarray) -> np.ndarray:
+    """Scores of a transformed batch; dropped rows get NaN, so row i stays row i."""
+    x, ok = prepare_rows(x, t)
+    s = x @ loadings
+    if ok is not None:
+        full = np.full((ok.size, loadings.shape[1]), np.nan)
+        full[ok] = s
+        s = full
+    return s
 
 
 def moments_task(path: str, row_group: int, spec: ReadSpec, full: bool, missing: str,
@@ -83,7 +103,7 @@ def product_task(path: str, row_group: int, spec: ReadSpec, t: Transform, v: np.
     limit_blas(blas_threads)
     out = np.zeros((spec.n_features, v.shape[1]))
     for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale):
-        x, _ = _prepare(x, t)
+        x, _ = prepare_rows(x, t)
         out += _product(x, v)
     return out
 
@@ -91,7 +111,7 @@ def product_task(path: str, row_group: int, spec: ReadSpec, t: Transform, v: np.
 def decode_task(path: str, row_group: int, spec: ReadSpec, t: Transform, blas_threads: int = 0) -> np.ndarray:
     """A whole block decoded and transformed, to be kept in worker memory between passes."""
     limit_blas(blas_threads)
-    parts = [_prepare(x, t)[0] for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale)]
+    parts = [prepare_rows(x, t)[0] for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale)]
     if len(parts) == 1:
         return parts[0]
     return np.concatenate(parts, axis=0) if parts else np.zeros((0, spec.n_features))
@@ -123,12 +143,7 @@ def scores_task(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: n
     rows = 0
     try:
         for x, keep in iter_block_many(path, row_groups, spec, t):
-            x, ok = _prepare(x, t)
-            s = x @ loadings
-            if ok is not None:
-                full = np.full((ok.size, loadings.shape[1]), np.nan)
-                full[ok] = s
-                s = full
+            s = score_rows(x, t, loadings)
             arrays = list(keep.columns) if keep is not None else []
             labels = list(keep.schema.names) if keep is not None else []
             arrays += [pa.array(s[:, j]) for j in range(s.shape[1])]

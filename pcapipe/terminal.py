@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from .compute import _cores, physical_memory
 from .config import parse_memory
+from .errors import InputError
 from .operators import choose_method
 
-__all__ = ["check_report", "describe_text", "describe_json", "top_loadings"]
+__all__ = ["check_report", "describe_text", "describe_json", "top_loadings", "spectrum_table"]
 
 
 def _size(n: float) -> str:
@@ -59,43 +62,109 @@ def check_report(config, overrides=()) -> str:
     return "\n".join(lines)
 
 
-def top_loadings(res, top: int) -> dict[str, list[tuple[str, float]]]:
-    """The ``top`` features of largest |loading| for each component."""
+def _check_top(top: int) -> None:
+    if not isinstance(top, int) or isinstance(top, bool) or top < 0:
+        raise InputError(f"--top: {top!r} is not a count; give 0 (no loadings) or more")
+
+
+def top_loadings(res, top: int) -> dict[str, list[tuple[str, float, float]]]:
+    """Per component, the ``top`` features of largest |loading|: ``(feature, loading, correlation)``.
+
+    ``correlation`` is :attr:`pcapipe.Result.correlation_loadings`, the
+    correlation of the feature with the component's scores.  Ties keep the
+    feature order of the run.
+    """
+    _check_top(top)
+    corr = res.correlation_loadings
     out = {}
     for pc in res.loadings.columns:
         col = res.loadings[pc]
         idx = np.argsort(-np.abs(col.to_numpy()), kind="stable")[:top]
-        out[pc] = [(str(col.index[i]), float(col.iloc[i])) for i in idx]
+        out[pc] = [(str(col.index[i]), float(col.iloc[i]), float(corr[pc].iloc[i])) for i in idx]
     return out
 
 
+def _finite(v):
+    """JSON has no NaN: None instead (strict parsers reject NaN)."""
+    if isinstance(v, float) and not math.isfinite(v):
+        return None
+    return v
+
+
 def describe_json(res, top: int) -> dict:
+    """What ``pcapipe describe --json`` prints: the spectrum and the top loadings, NaN as null."""
+    m = res.manifest
+    model = m["config"]["model"]
     comp = res.components.reset_index()
+    records = [{k: _finite(v.item() if hasattr(v, "item") else v) for k, v in row.items()}
+               for row in comp.to_dict(orient="records")]
     return {
         "directory": res.directory,
-        "n_samples": res.manifest["n_samples"],
-        "n_features": res.manifest["n_features"],
-        "method": res.manifest["method"],
-        "converged": res.manifest["converged"],
-        "total_variance": res.manifest["total_variance"],
-        "components": comp.to_dict(orient="records"),
-        "top_loadings": {pc: [{"feature": f, "loading": v} for f, v in rows]
+        "n_samples": m["n_samples"],
+        "n_features": m["n_features"],
+        "n_components": m["n_components"],
+        "center": bool(model.get("center", True)),
+        "scale": bool(model.get("scale", False)),
+        "method": m["method"],
+        "converged": m["converged"],
+        "tolerance": model.get("tolerance"),
+        "total_variance": _finite(m["total_variance"]),
+        "components": records,
+        "top_loadings": {pc: [{"feature": f, "loading": _finite(v), "correlation": _finite(r)} for f, v, r in rows]
                          for pc, rows in top_loadings(res, top).items()},
     }
 
 
+_TABLE = (("component", 10, None), ("variance", 14, "{:.6g}"), ("ratio", 9, "{:.4f}"),
+          ("cumulative", 12, "{:.4f}"), ("residual", 11, "{:.2e}"), ("std_error", 12, "{:.4g}"))
+_COLUMNS = ("explained_variance", "explained_variance_ratio", "cumulative_ratio", "residual_norm", "std_error")
+
+
+def spectrum_table(res) -> str:
+    """The spectrum as aligned text: one row per component, ``*`` after a component that did not converge."""
+    lines = ["".join(f"{h:<{w}}" if fmt is None else f"{h:>{w}}" for h, w, fmt in _TABLE)]
+    converged = res.components["converged"] if "converged" in res.components else None
+    for name, r in res.components[list(_COLUMNS)].iterrows():
+        cells = [f"{name:<{_TABLE[0][1]}}"]
+        cells += [f"{fmt.format(v):>{w}}" for (_, w, fmt), v in zip(_TABLE[1:], r.to_numpy())]
+        flag = "" if converged is None or bool(converged[name]) else " *"
+        lines.append("".join(cells) + flag)
+    return "\n".join(lines)
+
+
+def _loadings_table(res, top: int) -> str:
+    rows = top_loadings(res, top)
+    width = max([len("feature")] + [len(f) for items in rows.values() for f, _, _ in items])
+    lines = [f"{'component':<10}{'feature':<{width + 2}}{'loading':>9}{'correlation':>13}"]
+    for pc, items in rows.items():
+        for i, (f, v, r) in enumerate(items):
+            lines.append(f"{pc if i == 0 else '':<10}{f:<{width + 2}}{v:>+9.3f}{r:>+13.3f}")
+    return "\n".join(lines)
+
+
 def describe_text(res, top: int) -> str:
+    """What ``pcapipe describe`` prints: a headline, the spectrum table and the top loadings."""
+    _check_top(top)
     m = res.manifest
-    head = (f"{res.directory}\n{m['n_samples']} rows x {m['n_features']} features, method {m['method']}, "
-            f"{m['passes_over_data']} pass(es) over the data, "
-            f"{'converged' if m['converged'] else 'NOT all components converged'}\n")
-    cols = ["explained_variance", "explained_variance_ratio", "cumulative_ratio", "residual_norm", "std_error"]
-    header = f"{'component':<10}{'variance':>14}{'ratio':>10}{'cumulative':>12}{'residual':>12}{'std_error':>12}"
-    rows = [header]
-    for name, r in res.components[cols].iterrows():
-        rows.append(f"{name:<10}{r.iloc[0]:>14.6g}{r.iloc[1]:>10.4f}{r.iloc[2]:>12.4f}"
-                    f"{r.iloc[3]:>12.2e}{r.iloc[4]:>12.4g}")
-    parts = [head, "\n".join(rows), "", f"top {top} loadings"]
-    for pc, items in top_loadings(res, top).items():
-        parts.append(f"{pc}: " + ", ".join(f"{f} {v:+.3f}" for f, v in items))
+    model = m["config"]["model"]
+    kind = "correlation PCA (scaled)" if model.get("scale") else "covariance PCA"
+    if not model.get("center", True):
+        kind += ", not centred"
+    bad = [str(pc) for pc, ok in res.components["converged"].items() if not ok] \
+        if "converged" in res.components else []
+    state = "converged" if m["converged"] else f"NOT converged: {', '.join(bad) or 'see the manifest'}"
+    parts = [
+        res.directory,
+        f"{m['n_samples']} rows x {m['n_features']} features, {kind}, method {m['method']}, "
+        f"{m['passes_over_data']} pass(es) over the data, {state}",
+        f"total variance {m['total_variance']:.6g}; residual = ||C v - theta v||, "
+        f"tolerance {model.get('tolerance')} x the first eigenvalue",
+        "",
+        spectrum_table(res),
+    ]
+    if bad:
+        parts.append("* did not reach the tolerance")
+    if top:
+        parts += ["", f"top {min(top, m['n_features'])} loadings per component "
+                  "(correlation: of the feature with the component's scores)", _loadings_table(res, top)]
     return "\n".join(parts)

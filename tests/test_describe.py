@@ -1,0 +1,144 @@
+"""Tests of pcapipe.terminal: ``pcapipe describe`` (text and --json) and ``pcapipe check``."""
+
+import json
+import os
+import re
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+
+import pcapipe
+from conftest import known_spectrum, make_config, run_cli, write_parquet
+from pcapipe.errors import ConvergenceWarning, InputError
+from pcapipe.terminal import check_report, describe_json, describe_text
+
+_COLUMNS = ["explained_variance", "explained_variance_ratio", "cumulative_ratio", "residual_norm", "std_error"]
+# digits printed per column: %.6g, %.4f, %.4f, %.2e, %.4g -> the relative/absolute slack of a printed value
+_PRINTED = {"explained_variance": (5e-6, 0), "explained_variance_ratio": (0, 5e-5), "cumulative_ratio": (0, 5e-5),
+            "residual_norm": (5e-3, 0), "std_error": (5e-4, 0)}
+
+
+@pytest.fixture(scope="module")
+def run_dir(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("describe")
+    rng = np.random.default_rng(2024)
+    x = known_spectrum(800, 9, [9, 5, 3, 2, 1, 0.6, 0.4, 0.2, 0.1], rng) * np.linspace(0.5, 4, 9)
+    write_parquet(tmp / "in", x, files=2)
+    cfg = make_config(str(tmp / "in" / "*.parquet"), tmp / "run", model={"components": 4, "scale": True})
+    return pcapipe.run(cfg).directory
+
+
+def _table_rows(text):
+    """The spectrum rows of describe's text: name and five numbers per component."""
+    lines = text.splitlines()
+    start = next(i for i, line in enumerate(lines) if line.split()[:2] == ["component", "variance"])
+    rows = []
+    for line in lines[start + 1:]:
+        if not re.match(r"PC\d+ ", line):
+            break
+        name, *values = line.split()
+        rows.append((name, [float(v) for v in values[:5]], values[5:]))
+    return lines[start].split(), rows
+
+
+def test_describe_table_matches_components_parquet(run_dir):
+    text = describe_text(pcapipe.load(run_dir), top=3)
+    header, rows = _table_rows(text)
+    assert header == ["component", "variance", "ratio", "cumulative", "residual", "std_error"]
+    table = pq.read_table(os.path.join(run_dir, "components.parquet")).to_pandas()
+    assert [r[0] for r in rows] == list(table["component"])
+    for (name, values, flags), (_, want) in zip(rows, table.iterrows()):
+        assert flags == []  # every component converged: no "*"
+        for col, got in zip(_COLUMNS, values):
+            rel, absolute = _PRINTED[col]
+            assert got == pytest.approx(want[col], rel=rel, abs=absolute), (name, col)
+
+
+def test_describe_top_loadings_are_the_largest_in_loadings_parquet(run_dir):
+    res = pcapipe.load(run_dir)
+    text = describe_text(res, top=3)
+    loadings = pq.read_table(os.path.join(run_dir, "loadings.parquet")).to_pandas().set_index("feature")
+    block = text.split("top 3 loadings per component")[1].splitlines()[2:]
+    assert len(block) == 3 * loadings.shape[1]
+    current = None
+    seen = {}
+    for line in block:
+        parts = line.split()
+        if len(parts) == 4:
+            current = parts.pop(0)
+        seen.setdefault(current, []).append((parts[0], float(parts[1]), float(parts[2])))
+    for pc, items in seen.items():
+        col = loadings[pc]
+        want = col.abs().sort_values(ascending=False, kind="stable").index[:3]
+        assert [f for f, _, _ in items] == list(want)
+        for f, v, r in items:
+            assert v == pytest.approx(col[f], abs=5e-4)  # printed with 3 decimals
+            assert r == pytest.approx(res.correlation_loadings.loc[f, pc], abs=5e-4)
+
+
+def test_describe_json_matches_the_tables_and_is_strict_json(run_dir):
+    res = pcapipe.load(run_dir)
+    out = json.loads(json.dumps(describe_json(res, top=2), allow_nan=False))
+    table = pq.read_table(os.path.join(run_dir, "components.parquet")).to_pandas()
+    assert [c["component"] for c in out["components"]] == list(table["component"])
+    for got, (_, want) in zip(out["components"], table.iterrows()):
+        for col in _COLUMNS:
+            assert got[col] == want[col]
+    assert out["n_components"] == 4 and out["scale"] is True and out["center"] is True
+    for pc, items in out["top_loadings"].items():
+        assert len(items) == 2
+        assert items[0]["loading"] == res.loadings.loc[items[0]["feature"], pc]
+        assert abs(items[0]["loading"]) == res.loadings[pc].abs().max()
+        assert items[0]["correlation"] == pytest.approx(res.correlation_loadings.loc[items[0]["feature"], pc],
+                                                       rel=1e-15)
+
+
+def test_describe_marks_components_that_did_not_converge(tmp_path):
+    rng = np.random.default_rng(5)
+    # a flat spectrum converges slowly; one iteration leaves most pairs unconverged
+    x = known_spectrum(400, 30, np.linspace(2.0, 1.0, 30), rng)
+    write_parquet(tmp_path / "in", x)
+    cfg = make_config(str(tmp_path / "in" / "*.parquet"), tmp_path / "run",
+                      model={"components": 4, "method": "matrix-free", "max_iterations": 1, "oversample": 1})
+    with pytest.warns(ConvergenceWarning):
+        res = pcapipe.run(cfg)
+    bad = [pc for pc, ok in res.components["converged"].items() if not ok]
+    assert bad
+    text = describe_text(res, top=0)
+    assert f"NOT converged: {', '.join(bad)}" in text
+    _, rows = _table_rows(text)
+    assert [name for name, _, flags in rows if flags == ["*"]] == bad
+    assert "* did not reach the tolerance" in text
+    assert "loadings per component" not in text  # top=0: no loadings section
+
+
+def test_describe_rejects_a_negative_top(run_dir):
+    with pytest.raises(InputError, match="--top"):
+        describe_text(pcapipe.load(run_dir), top=-1)
+
+
+def test_cli_describe_text_and_json(run_dir):
+    done = run_cli("describe", run_dir, "--top", "2")
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.startswith(run_dir)
+    _, rows = _table_rows(done.stdout)
+    assert [r[0] for r in rows] == ["PC1", "PC2", "PC3", "PC4"]
+    done = run_cli("describe", run_dir, "--json", "--top", "1")
+    assert done.returncode == 0, done.stderr
+    out = json.loads(done.stdout)
+    assert out["directory"] == run_dir and len(out["top_loadings"]["PC1"]) == 1
+
+
+def test_check_report_plans_without_writing(tmp_path):
+    rng = np.random.default_rng(0)
+    write_parquet(tmp_path / "in", rng.standard_normal((300, 4)), files=3, row_group=50)
+    cfg = make_config(str(tmp_path / "in" / "*.parquet"), tmp_path / "run", model={"components": 2})
+    text = check_report(cfg)
+    fields = dict(re.split(r"\s{2,}", line, maxsplit=1) for line in text.splitlines()[:-1])
+    assert fields["rows"] == "300"
+    assert fields["features"].startswith("4: f0, f1, f2, f3")
+    assert fields["files"].startswith("3 (") and "6 blocks" in fields["files"]
+    assert fields["method"].split(":")[0] in ("covariance", "matrix-free")
+    assert text.splitlines()[-1] == "ok: nothing was written"
+    assert not os.path.exists(tmp_path / "run")

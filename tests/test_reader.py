@@ -1,0 +1,187 @@
+"""Decoding Parquet blocks into float64 arrays: layouts, dtypes, nulls, batching, the fused transform."""
+
+from __future__ import annotations
+
+import os
+import struct
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from pcapipe.errors import InputError
+from pcapipe.reader import ReadSpec, batch_to_array, iter_block, iter_file, table_to_array
+from conftest import write_parquet
+
+
+def _spec(d, vector=False, batch_rows=1 << 16, keep=()):
+    columns = ("emb",) if vector else tuple(f"f{j}" for j in range(d))
+    return ReadSpec(columns, "emb" if vector else "", d, batch_rows, tuple(keep))
+
+
+def _read_all(path, spec, **kw):
+    groups = range(pq.ParquetFile(path).metadata.num_row_groups)
+    return np.concatenate([x for x, _ in iter_file(path, groups, spec, **kw)], axis=0)
+
+
+@pytest.fixture
+def x(rng):
+    return rng.standard_normal((37, 5))
+
+
+def test_fixed_and_list_vectors_decode_alike(tmp_path, x):
+    (fixed,) = write_parquet(str(tmp_path / "fixed"), x, vector="fixed", row_group=10)
+    (lst,) = write_parquet(str(tmp_path / "list"), x, vector="list", row_group=10)
+    (scalar,) = write_parquet(str(tmp_path / "scalar"), x, row_group=10)
+    a = _read_all(fixed, _spec(5, vector=True))
+    b = _read_all(lst, _spec(5, vector=True))
+    c = _read_all(scalar, _spec(5))
+    # every layout holds the same float64 values, exactly
+    np.testing.assert_array_equal(a, x)
+    np.testing.assert_array_equal(b, x)
+    np.testing.assert_array_equal(c, x)
+
+
+@pytest.mark.parametrize("vector", [None, "fixed", "list"])
+def test_float32_becomes_float64(tmp_path, x, vector):
+    (path,) = write_parquet(str(tmp_path), x, vector=vector, dtype=np.float32)
+    got = _read_all(path, _spec(5, vector=vector is not None))
+    assert got.dtype == np.float64
+    # exactly the float32 values, widened (no rounding on the way)
+    np.testing.assert_array_equal(got, x.astype(np.float32).astype(np.float64))
+
+
+def test_scalar_layout_is_fortran(tmp_path, x):
+    (path,) = write_parquet(str(tmp_path), x)
+    (got, _), = list(iter_block(path, 0, _spec(5)))
+    assert got.flags.f_contiguous
+
+
+def test_nulls_become_nan_in_scalar_columns():
+    table = pa.table({"f0": pa.array([1.0, None, 3.0]), "f1": pa.array([None, 5, 6], pa.int32())})
+    got = batch_to_array(table, _spec(2), "t")
+    expected = np.array([[1.0, np.nan], [np.nan, 5.0], [3.0, 6.0]])
+    np.testing.assert_array_equal(got, expected)  # assert_array_equal treats NaN == NaN
+
+
+def test_null_entries_inside_vectors_become_nan():
+    table = pa.table({"emb": pa.array([[1.0, None], [3.0, 4.0]], pa.list_(pa.float64(), 2))})
+    got = batch_to_array(table, _spec(2, vector=True), "t")
+    np.testing.assert_array_equal(got, [[1.0, np.nan], [3.0, 4.0]])
+
+
+@pytest.mark.parametrize("batch_rows", [1, 7, 64, 1000])
+def test_batch_rows_bounds_batches(tmp_path, rng, batch_rows):
+    data = rng.standard_normal((300, 3))
+    (path,) = write_parquet(str(tmp_path), data)  # one row group of 300 rows
+    sizes, parts = [], []
+    for got, _ in iter_block(path, 0, _spec(3, batch_rows=batch_rows)):
+        sizes.append(got.shape[0])
+        parts.append(got)
+    assert max(sizes) <= batch_rows
+    assert sum(sizes) == 300
+    assert len(sizes) == -(-300 // batch_rows)
+    np.testing.assert_array_equal(np.concatenate(parts), data)
+
+
+@pytest.mark.parametrize("vector", [None, "fixed", "list"])
+def test_fused_shift_and_scale(tmp_path, x, vector):
+    (path,) = write_parquet(str(tmp_path), x, vector=vector, row_group=16)
+    shift = np.array([0.5, -1.0, 2.0, 0.0, 1e3])
+    inv_scale = np.array([2.0, 0.5, 1.0, 4.0, 1e-3])
+    spec = _spec(5, vector=vector is not None, batch_rows=8)
+    got = _read_all(path, spec, shift=shift, inv_scale=inv_scale)
+    np.testing.assert_allclose(got, (x - shift) * inv_scale, rtol=1e-15, atol=0)
+    # shift alone (scale = false)
+    np.testing.assert_allclose(_read_all(path, spec, shift=shift), x - shift, rtol=1e-15, atol=0)
+
+
+def test_integer_columns_with_shift(tmp_path):
+    path = str(tmp_path / "i.parquet")
+    pq.write_table(pa.table({"f0": np.arange(5, dtype=np.int64), "f1": np.arange(5, dtype=np.int8)}), path)
+    got = _read_all(path, _spec(2), shift=np.array([2.0, 0.5]), inv_scale=np.array([1.0, 2.0]))
+    np.testing.assert_array_equal(got, np.c_[np.arange(5) - 2.0, (np.arange(5) - 0.5) * 2.0])
+
+
+def test_keep_columns_come_with_rows(tmp_path, x):
+    ids = np.arange(100, 137)
+    (path,) = write_parquet(str(tmp_path), x, keep={"id": ids}, row_group=10)
+    spec = _spec(5, batch_rows=4, keep=("id",))
+    got_ids = []
+    for _, keep in iter_file(path, range(4), spec, with_keep=True):
+        got_ids += keep.column("id").to_pylist()
+    assert got_ids == ids.tolist()
+    assert all(k is None for _, k in iter_block(path, 0, spec))
+
+
+def test_table_to_array_matches_batch_to_array(x):
+    table = pa.table({f"f{j}": x[:, j] for j in range(5)})
+    np.testing.assert_array_equal(table_to_array(table, _spec(5), "t"), x)
+
+
+# ------------------------------------------------------------ errors while decoding
+
+def _vector_file(path, rows, row_group):
+    pq.write_table(pa.table({"emb": pa.array(rows)}), path, row_group_size=row_group)
+    return str(path)
+
+
+def test_ragged_row_named_by_its_row_in_the_file(tmp_path):
+    rows = [[float(i), 1.0, 2.0] for i in range(30)]
+    rows[23] = [1.0, 2.0, 3.0, 4.0]
+    path = _vector_file(tmp_path / "r.parquet", rows, row_group=10)
+    spec = _spec(3, vector=True, batch_rows=4)
+    # row 23 is in row group 2 (rows 20-29), in its first batch (rows 20-23)
+    with pytest.raises(InputError) as info:
+        list(iter_block(path, 2, spec))
+    msg = str(info.value)
+    assert "r.parquet: column 'emb': row 23 has 4 values, expected 3" in msg
+    assert "fix or drop" in msg
+    # the other row groups are fine
+    assert sum(b.shape[0] for b, _ in iter_block(path, 1, spec)) == 10
+
+
+def test_null_vector_row_named(tmp_path):
+    rows = [[float(i), 1.0] for i in range(12)]
+    rows[9] = None
+    path = _vector_file(tmp_path / "n.parquet", rows, row_group=6)
+    with pytest.raises(InputError, match=r"n\.parquet: column 'emb': row 9 is null; .*drop or fill"):
+        list(iter_block(path, 1, _spec(2, vector=True, batch_rows=2)))
+
+
+def test_fixed_size_of_wrong_width():
+    table = pa.table({"emb": pa.array([[1.0, 2.0]], pa.list_(pa.float64(), 2))})
+    with pytest.raises(InputError, match="holds vectors of 2 values, expected 3"):
+        batch_to_array(table, _spec(3, vector=True), "t")
+
+
+def test_corrupt_pages_give_input_error(tmp_path, x):
+    (path,) = write_parquet(str(tmp_path), x)
+    raw = bytearray(open(path, "rb").read())
+    # Parquet layout: "PAR1", pages, footer, 4-byte little-endian footer length, "PAR1"
+    footer = struct.unpack("<I", raw[-8:-4])[0]
+    raw[4: len(raw) - 8 - footer] = b"\xab" * (len(raw) - 12 - footer)
+    with open(path, "wb") as f:
+        f.write(raw)
+    with pytest.raises(InputError) as info:
+        list(iter_block(path, 0, _spec(5)))
+    msg = str(info.value)
+    assert "(row group 0): cannot be decoded" in msg and "re-copy it" in msg
+    assert "\n" not in msg
+    assert info.value.__cause__ is not None
+
+
+def test_file_replaced_after_planning(tmp_path, x):
+    (path,) = write_parquet(str(tmp_path), x)
+    pq.write_table(pa.table({"other": [1.0]}), path)
+    with pytest.raises(InputError, match="column 'f0' is gone; the file changed"):
+        list(iter_block(path, 0, _spec(5)))
+
+
+def test_file_not_parquet(tmp_path):
+    path = str(tmp_path / "junk.parquet")
+    with open(path, "wb") as f:
+        f.write(os.urandom(64))
+    with pytest.raises(InputError, match=r"junk\.parquet: cannot be read as Parquet"):
+        list(iter_block(path, 0, _spec(1)))
