@@ -8,6 +8,7 @@ with ``--debug``); 1 unexpected failure; 130 interrupted.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import logging
 import os
@@ -66,10 +67,12 @@ def _setup_logging(args) -> None:
     log.handlers[:] = [handler]
     log.setLevel(level)
     log.propagate = False
-    logging.getLogger("distributed").setLevel(logging.WARNING if not args.verbose else logging.INFO)
+    # distributed logs lost workers and schedulers with tracebacks; the error: line says it once
+    logging.getLogger("distributed").setLevel(logging.INFO if args.verbose else logging.CRITICAL)
 
 
 def _cmd_run(args) -> int:
+    from .config import load_config
     from .engine import run
 
     if len(args.configs) == 1:
@@ -81,20 +84,40 @@ def _cmd_run(args) -> int:
         raise ConfigError(f"--set {shared[0]}: one output directory for {len(args.configs)} configs; "
                           "set output.directory in each config file instead")
     # Several configs: a bad one must not stop the others; the worst outcome
-    # decides the exit status (a bug, 1, outranks bad input, 2).
+    # decides the exit status (a bug, 1, outranks bad input, 2).  Configs with
+    # the same [compute] section share one scheduler connection.
     status, done = 0, 0
-    for path in args.configs:
-        try:
-            _report_run(run(path, args.overrides, resume=args.resume))
-            done += 1
-        except PcapipeError as e:
-            status = status or 2
-            _print_error(args, e, prefix=path)
-        except Exception as e:  # noqa: BLE001 - reported like main() does, then go on
-            status = 1
-            _print_error(args, e, prefix=path)
+    with contextlib.ExitStack() as stack:
+        runners: dict = {}
+        for path in args.configs:
+            try:
+                cfg = load_config(path, args.overrides)
+                _report_run(run(cfg, resume=args.resume, runner=_runner_for(cfg, runners, stack)))
+                done += 1
+            except PcapipeError as e:
+                status = status or 2
+                _print_error(args, e, prefix=path)
+            except Exception as e:  # noqa: BLE001 - reported like main() does, then go on
+                status = 1
+                _print_error(args, e, prefix=path)
     log.info("%d of %d configs succeeded", done, len(args.configs))
     return status
+
+
+def _runner_for(cfg, runners: dict, stack):
+    """One open Runner per distinct [compute] section; a failed connection is not retried."""
+    from .compute import Runner
+
+    known = runners.get(cfg.compute)
+    if isinstance(known, PcapipeError):
+        raise known  # the same dead address: do not wait connect_timeout again
+    if known is None:
+        try:
+            known = runners[cfg.compute] = stack.enter_context(Runner(cfg.compute))
+        except PcapipeError as e:
+            runners[cfg.compute] = e
+            raise
+    return known
 
 
 def _report_run(res) -> None:

@@ -243,7 +243,11 @@ class _Job:
         if "method" in self.state:
             return MethodChoice(self.state["method"], self.state["method_reason"], self.state["method_estimates"])
         return choose_method(p.cfg.model.method, n, d, self.block, p.plan.total_bytes,
-                             info.memory_per_worker, info.workers, min(_cores(), self.runner.parallelism))
+                             info.memory_per_worker, info.workers, self._cores())
+
+    def _cores(self) -> int:
+        # a cluster's threads are all cores at work; locally no more than this machine has
+        return self.runner.parallelism if self.runner.distributed else min(_cores(), self.runner.parallelism)
 
     def execute(self) -> dict:
         p, runner = self.p, self.runner

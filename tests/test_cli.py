@@ -212,34 +212,72 @@ def test_keyboard_interrupt_130(monkeypatch, capsys):
     assert "interrupted" in capsys.readouterr().err
 
 
+def _two_configs(directory):
+    """a.toml and b.toml, valid configs (their inputs need not exist: run() is replaced)."""
+    for name in ("a", "b"):
+        (directory / f"{name}.toml").write_text(f'[input]\npaths = ["x.parquet"]\n[output]\ndirectory = "{name}"\n')
+    return ["run", str(directory / "a.toml"), str(directory / "b.toml")]
+
+
+def _name(cfg) -> str:
+    return os.path.basename(cfg.source)
+
+
 @pytest.mark.usefixtures("restore_logging")
-def test_interrupt_stops_several_configs(monkeypatch, capsys):
+def test_interrupt_stops_several_configs(monkeypatch, capsys, tmp_path):
     calls = []
 
-    def run(path, *args, **kwargs):
-        calls.append(path)
+    def run(cfg, *args, **kwargs):
+        calls.append(_name(cfg))
         raise KeyboardInterrupt
 
     monkeypatch.setattr(pcapipe.engine, "run", run)
-    assert cli.main(["run", "a.toml", "b.toml"]) == 130
+    monkeypatch.chdir(tmp_path)
+    assert cli.main(_two_configs(tmp_path)) == 130
     assert calls == ["a.toml"]
 
 
 @pytest.mark.usefixtures("restore_logging")
-def test_several_configs_bug_in_one_others_still_run(monkeypatch, capsys):
+def test_several_configs_bug_in_one_others_still_run(monkeypatch, capsys, tmp_path):
     calls = []
 
-    def run(path, *args, **kwargs):
-        calls.append(path)
-        if path == "a.toml":
+    def run(cfg, *args, **kwargs):
+        calls.append(_name(cfg))
+        if _name(cfg) == "a.toml":
             raise RuntimeError("boom")
-        raise pcapipe.ConfigError(f"{path}: model.x: unknown key")
+        raise pcapipe.ConfigError("model.x: unknown key")
 
     monkeypatch.setattr(pcapipe.engine, "run", run)
+    monkeypatch.chdir(tmp_path)
     # a bug (1) outranks bad input (2) in the exit status
+    _two_configs(tmp_path)
     assert cli.main(["run", "a.toml", "b.toml"]) == 1
     assert calls == ["a.toml", "b.toml"]
     errors = _errors(capsys.readouterr().err)
     assert errors == ["error: a.toml: unexpected failure: RuntimeError: boom (run again with --debug for "
                       "the traceback, and please report it)",
                       "error: b.toml: model.x: unknown key"]
+
+
+@pytest.mark.usefixtures("restore_logging")
+def test_several_configs_share_one_scheduler_connection(monkeypatch, tmp_path, rng):
+    import pcapipe.compute
+
+    write_parquet(tmp_path / "d", rng.standard_normal((60, 4)))
+    opened = []
+    real_enter = pcapipe.compute.Runner.__enter__
+
+    def counting_enter(self):
+        opened.append(self.cfg.scheduler)
+        return real_enter(self)
+
+    monkeypatch.setattr(pcapipe.compute.Runner, "__enter__", counting_enter)
+    paths = []
+    for name in ("a", "b"):
+        path = tmp_path / f"{name}.toml"
+        path.write_text(f'[input]\npaths = ["d/*.parquet"]\n[model]\ncomponents = 2\n'
+                        f'[compute]\nprogress = false\n[output]\ndirectory = "{name}"\nreport = false\n')
+        paths.append(str(path))
+    assert cli.main(["run", *paths, "-q"]) == 0
+    assert opened == ["threads"]  # one connection for both configs with the same [compute]
+    assert pcapipe.load(tmp_path / "a").n_components == pcapipe.load(tmp_path / "b").n_components == 2
