@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import subprocess
 import sys
@@ -61,6 +62,32 @@ def make_config(data_glob, out_dir, **sections):
     for key, values in sections.items():
         cfg.setdefault(key, {}).update(values)
     return cfg
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, str):
+        return json.dumps(v)  # a JSON string is a valid TOML basic string
+    return repr(v)
+
+
+def toml_text(cfg: dict) -> str:
+    """A config dict (sections of scalars and lists) as TOML text."""
+    lines = []
+    for section, table in cfg.items():
+        lines.append(f"[{section}]")
+        lines += [f"{k} = {_toml_value(v)}" for k, v in table.items()]
+    return "\n".join(lines) + "\n"
+
+
+def write_toml(path, cfg: dict) -> str:
+    """Write ``cfg`` as a TOML file; returns the path as a string."""
+    with open(path, "w") as f:
+        f.write(toml_text(cfg))
+    return str(path)
 
 
 def run_cli(*args, cwd=None, timeout=300, env=None):

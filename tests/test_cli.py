@@ -13,24 +13,11 @@ import pytest
 import pcapipe
 import pcapipe.engine
 from pcapipe import cli
-from conftest import make_config, run_cli, write_parquet
-
-
-def _toml(cfg: dict) -> str:
-    # Only the value types make_config produces: strings, bools, ints, lists of strings.
-    lines = []
-    for section, table in cfg.items():
-        lines.append(f"[{section}]")
-        for key, value in table.items():
-            text = json.dumps(value)  # JSON strings, lists and numbers are valid TOML
-            lines.append(f"{key} = {text}")
-    return "\n".join(lines) + "\n"
+from conftest import make_config, run_cli, write_parquet, write_toml
 
 
 def _config_file(path, cfg) -> str:
-    with open(path, "w") as f:
-        f.write(_toml(cfg))
-    return str(path)
+    return write_toml(path, cfg)
 
 
 @pytest.fixture(scope="module")

@@ -18,29 +18,11 @@ import pyarrow.parquet as pq
 import pytest
 
 import pcapipe
-from conftest import make_config, run_cli, write_parquet
+from conftest import make_config, run_cli, toml_text, write_parquet
 
 # ---------------------------------------------------------------- builders
 # Each builder gets an empty directory and returns (config dict, extra CLI
 # args); the config's output directory is always <dir>/out.
-
-
-def _toml_value(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    if isinstance(v, str):
-        return json.dumps(v)
-    return repr(v)
-
-
-def _toml(cfg: dict) -> str:
-    lines = []
-    for section, table in cfg.items():
-        lines.append(f"[{section}]")
-        lines += [f"{k} = {_toml_value(v)}" for k, v in table.items()]
-    return "\n".join(lines) + "\n"
 
 
 def _data(d, rows=40, cols=4, seed=0, **kw):
@@ -300,7 +282,7 @@ def _write_config(d, cfg) -> str:
         return cfg
     path = os.path.join(d, "config.toml")
     with open(path, "w") as f:
-        f.write(_toml(cfg))
+        f.write(toml_text(cfg))
     return path
 
 

@@ -18,30 +18,11 @@ import pandas as pd
 import pytest
 
 import pcapipe
-from conftest import ROOT, known_spectrum, make_config, run_cli, write_parquet
+from conftest import ROOT, known_spectrum, make_config, run_cli, write_parquet, write_toml
 
 # Slowly decaying spectrum so the matrix-free solver needs many passes
 # (made up for the test; the values only need gaps that converge slowly).
 _SPECTRUM = np.concatenate([[10.0, 9.0, 8.2, 7.6, 7.1], np.linspace(6.8, 0.5, 35)])
-
-
-def _write_toml(path, cfg) -> str:
-    def value(v):
-        if isinstance(v, bool):
-            return "true" if v else "false"
-        if isinstance(v, (list, tuple)):
-            return "[" + ", ".join(value(x) for x in v) + "]"
-        if isinstance(v, str):
-            return json.dumps(v)
-        return repr(v)
-
-    lines = []
-    for section, keys in cfg.items():
-        lines.append(f"[{section}]")
-        lines += [f"{k} = {value(v)}" for k, v in keys.items()]
-    with open(path, "w") as f:
-        f.write("\n".join(lines) + "\n")
-    return str(path)
 
 
 @pytest.fixture(scope="module")
@@ -97,7 +78,7 @@ def test_interrupted_run_resumes_to_the_same_answer(slow_job, tmp_path, sig):
     cfg = json.loads(json.dumps(cfg))
     out = tmp_path / "run"
     cfg["output"]["directory"] = str(out)
-    path = _write_toml(tmp_path / "job.toml", cfg)
+    path = write_toml(tmp_path / "job.toml", cfg)
     proc = _start(path)
     partial = str(out) + ".incomplete"
     seen = _wait_for_stage(partial, "solver", 3, proc)
@@ -122,7 +103,7 @@ def test_resume_refuses_changed_config_or_inputs(slow_job, tmp_path):
     root, cfg, _ = slow_job
     cfg = json.loads(json.dumps(cfg))
     cfg["output"]["directory"] = str(tmp_path / "run")
-    path = _write_toml(tmp_path / "job.toml", cfg)
+    path = write_toml(tmp_path / "job.toml", cfg)
     proc = _start(path)
     _wait_for_stage(str(tmp_path / "run") + ".incomplete", "solver", 2, proc)
     proc.kill()
