@@ -194,7 +194,7 @@ def _spectrum_table(components: pd.DataFrame) -> str:
         cells = (f"{r['explained_variance']:.6g}", f"{r['explained_variance_ratio']:.2%}",
                  f"{r['cumulative_ratio']:.2%}", f"{r['residual_norm']:.2e}", f"{r['std_error']:.4g}")
         rows.append(f"<tr><th>{html.escape(str(name))}</th>" + "".join(f'<td class="num">{c}</td>' for c in cells)
-                    + (f"<td>yes</td>" if ok else '<td class="bad">no</td>') + "</tr>")
+                    + ("<td>yes</td>" if ok else '<td class="bad">no</td>') + "</tr>")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
 
 

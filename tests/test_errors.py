@@ -8,7 +8,6 @@ Each row of ``CASES`` builds one bad input in its own directory and runs
 
 from __future__ import annotations
 
-import json
 import os
 import struct
 
