@@ -60,6 +60,10 @@ class DataPasses:
     def _name(self, kind: str, *args) -> str:
         return f"pcapipe-{kind}-{tokenize(self.plan.inputs_record(), self.spec, *args)}"
 
+    def _announce(self, what: str, n: int, unit: str) -> None:
+        self.count += 1
+        log.info("pass %d: %s, %d %s", self.count, what, n, unit)
+
     def moments(self, full: bool, missing: str, fill=None) -> Moments:
         """One pass: per-block moments merged by Chan-Golub-LeVeque in a fixed tree."""
         bt = self.runner.blas_threads()
@@ -67,8 +71,8 @@ class DataPasses:
         parts = [delayed(tasks.moments_task, pure=True)(b.path, b.row_group, self.spec, full, missing, fill, bt,
                                                         dask_key_name=f"{name}-{b.index}")
                  for b in self.plan.blocks]
+        self._announce("moments" + (" and covariance" if full else ""), len(parts), "blocks")
         (m,) = self.runner.compute([tree_reduce(parts, merge, name)], "moments")
-        self.count += 1
         return m
 
     def cache(self, transform: tasks.Transform) -> None:
@@ -78,6 +82,7 @@ class DataPasses:
         objs = [delayed(tasks.decode_task, pure=True)(b.path, b.row_group, self.spec, transform, bt,
                                                       dask_key_name=f"{name}-{b.index}")
                 for b in self.plan.blocks]
+        self._announce("decode into worker memory", len(objs), "blocks")
         self._cache = self.runner.persist(objs)
         self._cache_transform = transform
 
@@ -100,8 +105,9 @@ class DataPasses:
             parts = [delayed(tasks.product_task, pure=True)(b.path, b.row_group, self.spec, transform, vd, bt,
                                                             dask_key_name=f"{name}-{b.index}")
                      for b in self.plan.blocks]
+        self._announce(f"operator on {v.shape[1]} vectors" + (" (cached blocks)" if self._cache else ""),
+                       len(parts), "blocks")
         (out,) = self.runner.compute([tree_reduce(parts, tasks.add, name)], "product")
-        self.count += 1
         return out
 
     def scores(self, transform: tasks.Transform, loadings: np.ndarray, names, out_dir: str) -> list[int]:
@@ -116,6 +122,6 @@ class DataPasses:
             objs.append(delayed(tasks.scores_task, pure=True)(f.path, groups, self.spec, transform, loadings,
                                                               tuple(names), out, bt,
                                                               dask_key_name=f"{name}-{fi}"))
+        self._announce("scores", len(objs), "files")
         rows = self.runner.compute(objs, "scores")
-        self.count += 1
         return list(rows)
