@@ -12,7 +12,7 @@ variances", in COMPSTAT 1982 / Stanford tech. report STAN-CS-79-773::
 This never forms ``sum(x x^T) - n mu mu^T``, which loses every digit when the
 mean is large next to the spread (a mean of 1e8 with unit spread cancels 16
 digits in float64).  ``M2`` is the full d x d co-moment matrix (``full=True``,
-the covariance method: assembled by BLAS ``dsyrk``) or only its diagonal.
+the covariance method: assembled by BLAS ``syrk``) or only its diagonal.
 
 Per-feature missing counts (NaN, +-inf, nulls) are carried along, and so are
 per-feature means over the finite values, which ``impute-mean`` needs.
@@ -23,7 +23,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import blas
 
 __all__ = ["Moments", "batch_moments", "merge", "tree_merge", "covariance_from"]
 
@@ -38,8 +37,8 @@ class Moments:
         Rows that entered ``mean`` and ``m2``.
     mean : ndarray (d,)
     m2 : ndarray (d, d) or (d,)
-        Co-moment about the mean; for (d, d) only the upper triangle is kept
-        up to date (``symmetric()`` fills the rest).
+        Co-moment about the mean; for (d, d) only the upper triangle is
+        relied on (``symmetric()`` mirrors it).
     missing : ndarray (d,) int64
         Non-finite values seen per feature (in all rows, used or not).
     valid_n, valid_mean : ndarray (d,)
@@ -79,11 +78,14 @@ class Moments:
         return diag / max(self.n - 1, 1)
 
 
-def _gram_upper(xc: np.ndarray) -> np.ndarray:
-    """Upper triangle of ``xc^T xc`` by BLAS dsyrk, without copying ``xc``."""
-    if xc.flags.f_contiguous:
-        return blas.dsyrk(1.0, xc, trans=1, lower=0)
-    return blas.dsyrk(1.0, xc.T, trans=0, lower=0)
+def _gram(xc: np.ndarray) -> np.ndarray:
+    """``xc^T xc`` without copying ``xc``.
+
+    numpy hands ``a.T @ a`` on one buffer to BLAS ``syrk`` (half the flops of a
+    general product), for C- and Fortran-ordered ``xc`` alike; measured as fast
+    as calling scipy's ``dsyrk`` directly, without importing scipy.linalg.
+    """
+    return xc.T @ xc
 
 
 def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | None = None) -> Moments:
@@ -129,7 +131,7 @@ def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | No
         # with the mean of the centered values (Chan, Golub & LeVeque 1983,
         # "Algorithms for computing the sample variance", Am. Stat. 37, eq. 1.7).
         r = x.sum(axis=0) / n
-        m2 = _gram_upper(x) if full else np.einsum("ij,ij->j", x, x)
+        m2 = _gram(x) if full else np.einsum("ij,ij->j", x, x)
         m2 -= (np.outer(r, r) if full else r * r) * n
         part = Moments(n, mean + r, m2, miss, np.zeros(d, np.int64), np.zeros(d), n_all)
     part.missing = miss

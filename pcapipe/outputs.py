@@ -52,15 +52,16 @@ def build_tables(plan, m, res, vectors, std, scale_used, total_variance) -> dict
 
 
 def package_versions(own: str) -> dict:
-    import dask
-    import distributed
-    import pandas
-    import pyarrow
-    import scipy
+    """Versions of Python and the libraries that computed the run (read without importing them)."""
+    from importlib.metadata import PackageNotFoundError, version
 
-    return {"pcapipe": own, "python": platform.python_version(), "numpy": np.__version__,
-            "scipy": scipy.__version__, "pandas": pandas.__version__, "pyarrow": pyarrow.__version__,
-            "dask": dask.__version__, "distributed": distributed.__version__}
+    out = {"pcapipe": own, "python": platform.python_version()}
+    for name in ("numpy", "scipy", "pandas", "pyarrow", "dask", "distributed"):
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            out[name] = None
+    return out
 
 
 def manifest_for(p, m, res, choice, total_variance, passes, cache, info, timings, score_rows,
