@@ -33,15 +33,15 @@ from .operators import DenseOperator, MatrixFreeOperator, MethodChoice, choose_m
 from .outputs import build_tables, component_names, manifest_for
 from .passes import DataPasses
 from .plan import Plan, make_plan
+from .reader import batch_rows_for
 from .solver import SolverResult, solve
 from .tasks import Transform
 from .writer import RunWriter
 
-__all__ = ["run", "prepare", "Prepared", "batch_rows_for", "check_components"]
+__all__ = ["run", "prepare", "Prepared", "check_components"]
 
 log = logging.getLogger("pcapipe")
 
-_BATCH_BYTES = 32 << 20  # decoded batch size; bigger buys nothing in BLAS, costs memory
 
 
 @dataclass
@@ -52,12 +52,6 @@ class Prepared:
     plan: Plan
     writer: RunWriter
     timings: dict = field(default_factory=dict)
-
-
-def batch_rows_for(n_features: int, memory_per_worker: int) -> int:
-    """Rows per decoded batch: ~32 MiB, or less when the worker budget is small."""
-    budget = min(_BATCH_BYTES, max(memory_per_worker // 16, 1 << 20))
-    return int(max(256, budget // (8 * max(1, n_features))))
 
 
 def check_components(components, n: int, d: int) -> None:

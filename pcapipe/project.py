@@ -19,12 +19,11 @@ import pyarrow.parquet as pq
 
 from .errors import InputError, OutputError
 from .plan import resolve_inputs
-from .reader import ReadSpec, batch_to_array
+from .reader import ReadSpec, batch_rows_for, batch_to_array
 from .tasks import Transform, score_rows
 
 __all__ = ["Projector", "projector_for", "project_frame", "project_paths", "project_to_directory"]
 
-_BATCH_BYTES = 32 << 20  # decoded features per batch, as in the run itself
 
 _MISSING = {"fail": "fail", "drop-rows": "drop", "impute-mean": "impute"}
 
@@ -47,7 +46,7 @@ def projector_for(result) -> Projector:
     d = len(f)
     vec = cfg_in.get("vector_column", "")
     columns = (vec,) if vec else tuple(result.loadings.index)
-    batch = int(max(256, _BATCH_BYTES // (8 * max(1, d))))
+    batch = batch_rows_for(d)
     spec = ReadSpec(columns, vec, d, batch, tuple(cfg_in.get("keep", ())))
     shift = f["mean"].to_numpy() if model.get("center", True) else np.zeros(d)
     inv = 1.0 / f["scale_used"].to_numpy() if model.get("scale", False) else None

@@ -33,7 +33,8 @@ def _local_memory(cfg) -> tuple[int, int, str]:
 
 def check_report(config, overrides=()) -> str:
     """Validate the config and plan the run; return the summary ``pcapipe check`` prints."""
-    from .engine import batch_rows_for, prepare
+    from .engine import prepare
+    from .reader import batch_rows_for
 
     p = prepare(config, overrides)
     plan, cfg = p.plan, p.cfg
