@@ -315,7 +315,9 @@ class _Job:
         if self.state.get("stage") == "solved":
             return self._solution(), op.trace, self.state.get("cache", cache)
         if cache is None:
+            t = time.perf_counter()
             cache = _maybe_cache(passes, self.runner, transform, m.n, d)
+            self.timings["cache_seconds"] = time.perf_counter() - t
         t = time.perf_counter()
         res = self._iterate(op, passes, choice)
         passes.release()

@@ -8,7 +8,6 @@ were.  Task names are deterministic (``pcapipe-<pass>-<token>-<index>``).
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 import os
 
@@ -19,7 +18,7 @@ from dask.base import tokenize
 from . import tasks
 from .moments import Moments, merge
 from .plan import Plan
-from .reader import ReadSpec, batch_rows_for
+from .reader import ReadSpec
 
 __all__ = ["DataPasses", "tree_reduce"]
 
@@ -54,7 +53,6 @@ class DataPasses:
         self.plan = plan
         self.runner = runner
         self.spec = ReadSpec(plan.columns, plan.vector_column, plan.n_features, batch_rows, plan.keep)
-        self.memory_per_worker = runner.info.memory_per_worker
         self.count = 0
         self._cache = None
         self._cache_transform = None
@@ -71,9 +69,6 @@ class DataPasses:
         bt = self.runner.blas_threads()
         name = self._name("moments", full, missing, fill)
         spec = self.spec
-        if full:
-            spec = dataclasses.replace(spec, batch_rows=max(spec.batch_rows, batch_rows_for(
-                spec.n_features, self.memory_per_worker, gram=True)))
         parts = [delayed(tasks.moments_task, pure=True)(b.path, b.row_group, spec, full, missing, fill, bt,
                                                         dask_key_name=f"{name}-{b.index}")
                  for b in self.plan.blocks]

@@ -35,20 +35,22 @@ BATCH_BYTES = 8 << 20
 WHOLE_ROW_GROUP_BYTES = 64 << 20
 
 
-def batch_rows_for(n_features: int, memory_per_worker: int | None = None, gram: bool = False) -> int:
-    """Rows per decoded batch: 8 MiB, or less when the worker's memory budget is small.
+def batch_rows_for(n_features: int, memory_per_worker: int | None = None) -> int:
+    """Rows per decoded batch: 8 MiB, but at least d rows (up to 64 MiB).
 
-    For the d x d Gram (``gram``) each batch also costs an O(d^2) merge, so a
-    batch has at least d rows (up to 64 MiB) to keep the merge small next to
-    the O(rows d^2) product: on 12500 x 2048 float32 blocks, 2048-row batches
-    are 3x faster than 512-row ones (measured, one thread).
+    Wide tables need the floor: each batch costs an O(d^2) merge of the Gram
+    and one Python call per scalar column, both small next to the O(rows d^2)
+    product only when rows >= d.  Measured on 12500 x 2048 float32 blocks, one
+    thread: 2048-row batches are 3x faster than 512-row ones.  A small worker
+    memory budget lowers both limits.
     """
     d = max(1, n_features)
-    budget = BATCH_BYTES if memory_per_worker is None else min(BATCH_BYTES, max(memory_per_worker // 16, 1 << 20))
-    rows = max(256, budget // (8 * d))
-    if gram:
-        cap = 8 * BATCH_BYTES if memory_per_worker is None else min(8 * BATCH_BYTES, memory_per_worker // 4)
-        rows = max(rows, min(d, cap // (8 * d)))
+    cap = 8 * BATCH_BYTES
+    budget = BATCH_BYTES
+    if memory_per_worker is not None:
+        budget = min(BATCH_BYTES, max(memory_per_worker // 16, 1 << 20))
+        cap = min(cap, memory_per_worker // 4)
+    rows = max(256, budget // (8 * d), min(d, cap // (8 * d)))
     return int(rows)
 
 
@@ -185,8 +187,12 @@ def _open(path: str) -> pq.ParquetFile:
 
 
 def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=None,
-               with_keep: bool = False) -> Iterator[tuple[np.ndarray, pa.RecordBatch | None]]:
+               with_keep: bool = False, whole: bool = False) -> Iterator[tuple[np.ndarray, pa.RecordBatch | None]]:
     """Stream one row group as decoded batches.
+
+    ``whole`` reads the row group in one call whatever its size (for a caller
+    that keeps the whole decoded block anyway); otherwise only row groups up
+    to ``WHOLE_ROW_GROUP_BYTES`` are, and larger ones are streamed.
 
     Yields ``(x, keep_batch)`` where ``keep_batch`` holds the keep columns
     when ``with_keep`` is true (else None).
@@ -207,7 +213,7 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
     try:
         # Only vector errors name a row, so scalar blocks skip the row-group offsets.
         row = _row_group_starts(path, os.stat(path).st_mtime_ns)[row_group] if spec.vector_column else 0
-        if pf.metadata.row_group(row_group).total_byte_size <= WHOLE_ROW_GROUP_BYTES:
+        if whole or pf.metadata.row_group(row_group).total_byte_size <= WHOLE_ROW_GROUP_BYTES:
             whole = pf.read_row_group(row_group, columns=columns, use_threads=False)
             batches = (whole.slice(i, spec.batch_rows) for i in range(0, whole.num_rows, spec.batch_rows))
         else:

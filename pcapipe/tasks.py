@@ -111,7 +111,7 @@ def product_task(path: str, row_group: int, spec: ReadSpec, t: Transform, v: np.
 def decode_task(path: str, row_group: int, spec: ReadSpec, t: Transform, blas_threads: int = 0) -> np.ndarray:
     """A whole block decoded and transformed, to be kept in worker memory between passes."""
     limit_blas(blas_threads)
-    parts = [prepare_rows(x, t)[0] for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale)]
+    parts = [prepare_rows(x, t)[0] for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale, whole=True)]
     if len(parts) == 1:
         return parts[0]
     return np.concatenate(parts, axis=0) if parts else np.zeros((0, spec.n_features))

@@ -26,6 +26,7 @@ import json
 import os
 import platform
 import signal
+import subprocess
 import sys
 import time
 from dataclasses import asdict
@@ -85,6 +86,10 @@ class Bench:
         self.pkg_root = _code_snapshot(args.scratch) if args.code == "head" else REPO
         _PKG_ROOT[0] = self.pkg_root
         self.env = measure.child_env(self.pkg_root)
+        where = subprocess.run([sys.executable, "-c", "import pcapipe; print(pcapipe.__file__)"], env=self.env,
+                               cwd=self.root, capture_output=True, text=True, check=True).stdout.strip()
+        if not where.startswith(self.pkg_root):
+            raise SystemExit(f"children would import {where}, not the package under {self.pkg_root}")
         self.rows: list[Row] = []
         self.timeout = args.timeout or (300.0 if args.quick else 900.0)
         self.workers = args.workers or _CORES
@@ -95,8 +100,10 @@ class Bench:
         best = None
         for i in range(self.args.repeat):
             print(f"  {label} ...", end="", flush=True, file=sys.stderr)
+            # cwd outside the repository: ``python -m`` puts the cwd first on sys.path, and the
+            # working tree's package would shadow the frozen copy on PYTHONPATH
             res = measure.run_child(argv, self.env, os.path.join(self.root, "logs", label), self.timeout,
-                                    cwd=REPO)
+                                    cwd=self.root)
             print(f" {res.wall_seconds:.1f} s, {res.peak_rss_mb:.0f} MB, others {res.others_cores:.2f} cores",
                   file=sys.stderr)
             if res.returncode != 0:
@@ -253,8 +260,6 @@ def _ratios(rows: list[Row]) -> None:
 
 
 def _environment(env: dict) -> str:
-    import subprocess
-
     code = ("import json, numpy, scipy.linalg, threadpoolctl; "
             "print(json.dumps([{k: i.get(k) for k in ('internal_api', 'version', 'architecture', "
             "'num_threads', 'filepath')} for i in threadpoolctl.threadpool_info()]))")
@@ -281,8 +286,6 @@ def _code_snapshot(scratch: str) -> str:
     edit); every child imports this frozen copy instead, so one run measures
     one identifiable version.
     """
-    import subprocess
-
     head = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True, text=True,
                           check=True).stdout.strip()
     dest = os.path.join(scratch, f"code-{head}")
@@ -311,7 +314,6 @@ def _package_digest() -> str:
 
 def _code_state(rows) -> str:
     """Commit and digest of the package sources; warns when they changed during the run."""
-    import subprocess
 
     head = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True,
                           text=True).stdout.strip()
