@@ -56,23 +56,12 @@ def _batch_rows(d: int) -> int:
 _SOLVER = {"tall": (1e-9, 300), "wide": (1e-6, 300), "degenerate": (1e-6, 20), "growth": (1e-9, 300)}
 
 
-def _toml_value(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    if isinstance(v, str):
-        return json.dumps(v)
-    return repr(v)
-
-
 def _write_config(path: str, sections: dict) -> None:
-    with open(path, "w") as f:
-        for name, keys in sections.items():
-            f.write(f"[{name}]\n")
-            for k, v in keys.items():
-                f.write(f"{k} = {_toml_value(v)}\n")
-            f.write("\n")
+    # one TOML writer for the suite and the benchmark: tests/conftest.py
+    sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    from conftest import write_toml
+
+    write_toml(path, sections)
 
 
 class Bench:
