@@ -180,7 +180,8 @@ def _row_group_starts(path: str, mtime_ns: int) -> tuple[int, ...]:
 
 def _open(path: str) -> pq.ParquetFile:
     try:
-        return pq.ParquetFile(path)
+        # pre_buffer would hold the whole row group; a small read buffer streams the pages
+        return pq.ParquetFile(path, pre_buffer=False, buffer_size=1 << 16)
     except (OSError, pa.ArrowException) as e:
         raise InputError(f"{path}: cannot be read as Parquet ({_one_line(e)}); re-copy the file, or "
                          "leave it out of input.paths") from e

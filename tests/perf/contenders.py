@@ -42,15 +42,26 @@ def _blocks(paths):
     return out
 
 
-def _decode(batch, layout: str, d: int, as_f64: bool):
-    """A batch as numpy: column views (floor-read) or one float64 matrix (Gram)."""
+def _decode(batch, layout: str, d: int, as_f64: bool, buf: np.ndarray | None = None):
+    """A batch as numpy: column views (floor-read) or one float64 matrix (Gram).
+
+    ``buf``: a reusable float64 buffer of at least the batch's rows; the floor
+    reuses one per thread, since a fresh 32 MiB array is mmapped and page-faulted
+    anew each time (glibc's mmap threshold tops out at 32 MiB), which is not
+    part of the work.
+    """
+    n = batch.num_rows
     if layout == "vector":
         col = batch.column(0)
-        x = col.flatten().to_numpy().reshape(len(col), d)
-        return x.astype(np.float64) if as_f64 and x.dtype != np.float64 else x
+        x = col.flatten().to_numpy().reshape(n, d)
+        if not as_f64 or x.dtype == np.float64:
+            return x
+        out = np.empty((n, d)) if buf is None else buf.reshape(-1)[: n * d].reshape(n, d)
+        out[...] = x
+        return out
     if not as_f64:
         return [c.to_numpy() for c in batch.columns]
-    x = np.empty((batch.num_rows, d), order="F")
+    x = np.empty((n, d), order="F") if buf is None else buf[:n]
     for j, c in enumerate(batch.columns):
         x[:, j] = c.to_numpy()
     return x
@@ -61,14 +72,16 @@ def _floor(spec, gram: bool):
     from threadpoolctl import threadpool_limits
 
     d, layout = spec["d"], spec["layout"]
-    acc = {}
+    acc, bufs = {}, {}
 
     def work(block):
         path, rg, _ = block
         pf = pq.ParquetFile(path)
         key = threading.get_ident()
+        if gram and key not in bufs:
+            bufs[key] = np.empty((spec["batch_rows"], d), order="F")
         for batch in pf.iter_batches(batch_size=spec["batch_rows"], row_groups=[rg], use_threads=False):
-            x = _decode(batch, layout, d, gram)
+            x = _decode(batch, layout, d, gram, bufs.get(key))
             if gram:
                 c = acc.get(key)
                 if x.flags.f_contiguous:

@@ -21,7 +21,7 @@ against eigh of the exact float64 covariance of the stored files: *eig rel err* 
 relative error of the top k eigenvalues, *subspace angle* the largest principal angle between
 the top-k subspaces (radians), *vector angle* the largest angle between a computed vector and
 its reference vector; "(sep)" = only the separated leading components of the near-degenerate
-case (inside a 1e-3 cluster single vectors are not determined to better than the cluster).
+case (inside the dense 1e-3 bulk single vectors are not determined to better than that).
 Data are read from the page cache (the files were just written or read), the same for every
 contender."""
 
@@ -87,7 +87,7 @@ def _degenerate(rows) -> list[str]:
         if r is None:
             continue
         un = r.extra.get("unconverged", [])
-        out.append(f"**degenerate, {label[9:]}** (6 separated, then a cluster with relative gaps 1e-3; k = 10)")
+        out.append(f"**degenerate, {label[9:]}** (6 separated, then the top of a dense bulk with relative gaps 1e-3; k = 10)")
         if un:
             listed = ", ".join(f"PC{u['component']} {u['relative_residual']:.1e} (gap {u['gap']:.1e})" for u in un)
             out.append(f"- flagged unconverged after {r.extra['operator_applications']} operator applications: "
