@@ -29,7 +29,7 @@ from dataclasses import dataclass
 
 import dask
 
-from .config import ComputeConfig, parse_memory
+from .config import ComputeConfig, format_size, parse_memory
 from .errors import ClusterError
 
 __all__ = ["Runner", "WorkerInfo", "physical_memory", "blas_shares"]
@@ -209,7 +209,7 @@ class Runner:
             self._stack.close()
             raise
         log.info("compute: %s, %d worker(s) x %d thread(s), %s per worker%s", self.info.scheduler,
-                 self.info.workers, self.info.threads_per_worker, _size(self.info.memory_per_worker),
+                 self.info.workers, self.info.threads_per_worker, format_size(self.info.memory_per_worker),
                  f", dashboard {self.info.dashboard}" if self.info.dashboard else "")
         return self
 
@@ -437,9 +437,3 @@ def _takes_n_workers() -> bool:
     return "n_workers" in inspect.signature(Client.scheduler_info).parameters
 
 
-def _size(n: int) -> str:
-    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
-        if n < 1024 or unit == "TiB":
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1024
-    return str(n)

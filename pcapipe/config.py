@@ -27,7 +27,7 @@ from pcapipe.errors import ConfigError
 __all__ = [
     "InputConfig", "ModelConfig", "ComputeConfig", "OutputConfig", "Config",
     "SECTIONS", "CHOICES", "SCHEDULERS", "MEMORY_UNITS",
-    "load_config", "parse_memory", "config_to_dict", "resolve_path",
+    "load_config", "parse_memory", "format_size", "config_to_dict", "resolve_path",
 ]
 
 _log = logging.getLogger("pcapipe")
@@ -432,6 +432,15 @@ def load_config(source: "str | os.PathLike[str] | Mapping[str, Any]",
     sections = _validate(ctx, raw)
     _log.debug("config loaded from %s, overridden: %s", origin, sorted(ctx.overridden))
     return Config(**sections, base_dir=base_dir, source=origin)
+
+
+def format_size(n: float) -> str:
+    """Bytes as text with binary units (the inverse direction of :func:`parse_memory`)."""
+    for unit in ("B", "KiB", "MiB", "GiB"):
+        if n < 1024:
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1024
+    return f"{n:.1f} TiB"
 
 
 def parse_memory(text: str) -> int | None:

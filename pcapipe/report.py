@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 
+from .config import format_size
 from .errors import InputError, OutputError
 from .figures import (BAR_COMPONENTS, LEVELS, fig_convergence, fig_cumulative, fig_heatmap, fig_loadings,
                       fig_scatter, fig_scree, png_bytes)
@@ -68,12 +69,6 @@ def sample_scores(directory: str, columns, limit: int = SAMPLE_ROWS) -> pd.DataF
     return out.dropna(subset=pcs).head(limit).reset_index(drop=True)
 
 
-def _size(n: float) -> str:
-    for unit in ("B", "KiB", "MiB", "GiB"):
-        if n < 1024:
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1024
-    return f"{n:.1f} TiB"
 
 
 def summary_rows(manifest: dict) -> list[tuple[str, str]]:
@@ -83,7 +78,7 @@ def summary_rows(manifest: dict) -> list[tuple[str, str]]:
     model, inp = cfg.get("model", {}), cfg.get("input", {})
     inputs = m.get("inputs", [])
     paths = [f["path"] for f in inputs]
-    files = f"{len(inputs)} file(s), {_size(sum(f.get('bytes', 0) for f in inputs))}, " \
+    files = f"{len(inputs)} file(s), {format_size(sum(f.get('bytes', 0) for f in inputs))}, " \
             f"{sum(f.get('rows', 0) for f in inputs)} rows: " + ", ".join(paths[:5]) + \
             (f", ... ({len(paths) - 5} more)" if len(paths) > 5 else "")
     prep = ("centred" if model.get("center", True) else "not centred") + (

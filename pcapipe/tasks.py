@@ -17,7 +17,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .moments import Moments, batch_moments, tree_merge
-from .reader import ReadSpec, iter_block
+from .reader import ReadSpec, iter_block, iter_file
 
 __all__ = ["Transform", "prepare_rows", "score_rows", "moments_task", "product_task", "scores_task", "decode_task",
            "product_cached_task", "add", "limit_blas", "probe_task"]
@@ -142,7 +142,7 @@ def scores_task(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: n
     writer = None
     rows = 0
     try:
-        for x, keep in iter_block_many(path, row_groups, spec, t):
+        for x, keep in iter_file(path, row_groups, spec, t.shift, t.inv_scale, with_keep=True):
             s = score_rows(x, t, loadings)
             arrays = list(keep.columns) if keep is not None else []
             labels = list(keep.schema.names) if keep is not None else []
@@ -162,9 +162,6 @@ def scores_task(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: n
     return rows
 
 
-def iter_block_many(path, row_groups, spec, t):
-    for rg in row_groups:
-        yield from iter_block(path, rg, spec, t.shift, t.inv_scale, with_keep=True)
 
 
 def probe_task(path: str) -> dict:

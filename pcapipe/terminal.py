@@ -7,19 +7,13 @@ import math
 import numpy as np
 
 from .compute import _cores, physical_memory
-from .config import parse_memory
+from .config import format_size, parse_memory
 from .errors import InputError
 from .operators import choose_method
 
 __all__ = ["check_report", "describe_text", "describe_json", "top_loadings", "spectrum_table"]
 
 
-def _size(n: float) -> str:
-    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
-        if n < 1024 or unit == "TiB":
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1024
-    return f"{n}"
 
 
 def _local_memory(cfg) -> tuple[int, int, str]:
@@ -48,15 +42,15 @@ def check_report(config, overrides=()) -> str:
     task_bytes = batch * d * 8 * 3 + (8 * d * d * 3 if choice.method == "covariance" else 8 * d * block * 2)
     lines = [
         f"config      {cfg.source}",
-        f"files       {len(plan.files)} ({_size(plan.total_bytes)}), {len(plan.blocks)} blocks (row groups)",
+        f"files       {len(plan.files)} ({format_size(plan.total_bytes)}), {len(plan.blocks)} blocks (row groups)",
         f"rows        {n}",
         f"features    {d}" + (f" from vector column {plan.vector_column!r}" if plan.vector_column else
                               f": {', '.join(plan.features[:6])}{', ...' if d > 6 else ''}"),
         f"keep        {', '.join(plan.keep) or '(none)'}",
         f"components  {comp}" + ("" if isinstance(comp, int) else " of the variance"),
         f"method      {choice.method}: {choice.reason}",
-        f"compute     {cfg.compute.scheduler}, {workers} worker(s), {_size(memory)} {memory_note}",
-        f"memory      ~{_size(task_bytes)} per task (batches of {batch} rows)",
+        f"compute     {cfg.compute.scheduler}, {workers} worker(s), {format_size(memory)} {memory_note}",
+        f"memory      ~{format_size(task_bytes)} per task (batches of {batch} rows)",
         f"output      {p.writer.directory}",
         "ok: nothing was written",
     ]
