@@ -120,8 +120,9 @@ class Checkpoint:
 
     def moments(self) -> Moments:
         a = _load_npz(os.path.join(self.dir, "moments.npz"))
+        weights = (float(a["weight"]), float(a["weight2"]), a["valid_weight"]) if "weight" in a else ()
         return Moments(int(a["n"]), a["mean"], a["m2"], a["missing"], a["valid_n"], a["valid_mean"],
-                       int(a["rows_seen"]))
+                       int(a["rows_seen"]), *weights)
 
     def solver_state(self) -> SolverState | None:
         path = os.path.join(self.dir, "solver.npz")
@@ -139,7 +140,10 @@ class Checkpoint:
             _save_npz(os.path.join(self.dir, "moments.npz"), {
                 "n": np.array(moments.n), "mean": moments.mean, "m2": moments.m2, "missing": moments.missing,
                 "valid_n": moments.valid_n, "valid_mean": moments.valid_mean,
-                "rows_seen": np.array(moments.rows_seen)})
+                "rows_seen": np.array(moments.rows_seen),
+                **({} if moments.weight is None else {
+                    "weight": np.array(moments.weight), "weight2": np.array(moments.weight2),
+                    "valid_weight": moments.valid_weight})})
         if solver is not None:
             _save_npz(os.path.join(self.dir, "solver.npz"), solver.arrays())
         if solution is not None:

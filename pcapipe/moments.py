@@ -45,6 +45,13 @@ class Moments:
         Count and mean of the finite values per feature.
     rows_seen : int
         All rows read, including dropped ones.
+    weight, weight2 : float or None
+        Sum and sum of squares of the row weights of the rows in ``mean`` and
+        ``m2`` (:mod:`pcapipe.weighted`); None when the rows are unweighted,
+        which counts each row once.
+    valid_weight : ndarray (d,) or None
+        Weighted rows: the weight of the finite values per feature, the
+        weights behind ``valid_mean``.
     """
 
     n: int
@@ -54,12 +61,21 @@ class Moments:
     valid_n: np.ndarray
     valid_mean: np.ndarray
     rows_seen: int
+    weight: float | None = None
+    weight2: float | None = None
+    valid_weight: np.ndarray | None = None
 
     @classmethod
-    def empty(cls, d: int, full: bool) -> "Moments":
+    def empty(cls, d: int, full: bool, weighted: bool = False) -> "Moments":
         z = np.zeros(d)
         return cls(0, z.copy(), np.zeros((d, d)) if full else z.copy(),
-                   np.zeros(d, dtype=np.int64), np.zeros(d, dtype=np.int64), z.copy(), 0)
+                   np.zeros(d, dtype=np.int64), np.zeros(d, dtype=np.int64), z.copy(), 0,
+                   *((0.0, 0.0, z.copy()) if weighted else ()))
+
+    @property
+    def total(self) -> float:
+        """What the denominator counts: the sum of the row weights, or the rows used."""
+        return float(self.n) if self.weight is None else self.weight
 
     @property
     def full(self) -> bool:
@@ -73,9 +89,9 @@ class Moments:
         return upper + np.triu(upper, 1).T
 
     def variance(self) -> np.ndarray:
-        """Per-feature variance with denominator n - 1."""
+        """Per-feature variance with denominator n - 1 (weighted: sum(w) - 1)."""
         diag = np.diag(self.m2) if self.full else self.m2
-        return diag / max(self.n - 1, 1)
+        return diag / max(self.total - 1, 1)
 
 
 def _gram(xc: np.ndarray) -> np.ndarray:
@@ -88,7 +104,8 @@ def _gram(xc: np.ndarray) -> np.ndarray:
     return xc.T @ xc
 
 
-def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | None = None) -> Moments:
+def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | None = None,
+                  weights: np.ndarray | None = None) -> Moments:
     """Moments of one decoded batch.
 
     Parameters
@@ -103,7 +120,14 @@ def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | No
         ``impute-mean`` replaces them by ``fill`` when it is given, else drops
         the rows (the first of the two passes impute-mean needs).
     fill : ndarray (d,), optional
+    weights : ndarray (n,), optional
+        Row weights (finite, >= 0): computed by
+        :func:`pcapipe.weighted.weighted_batch_moments` instead.
     """
+    if weights is not None:
+        from .weighted import weighted_batch_moments
+
+        return weighted_batch_moments(x, weights, full, missing, fill)
     n_all, d = x.shape
     col = x.sum(axis=0)
     miss = np.zeros(d, dtype=np.int64)
@@ -144,30 +168,45 @@ def batch_moments(x: np.ndarray, full: bool, missing: str, fill: np.ndarray | No
 def _merge_means(na, ma, nb, mb):
     n = na + nb
     with np.errstate(invalid="ignore", divide="ignore"):
-        w = np.where(n > 0, nb / np.maximum(n, 1), 0.0)
+        # n may be a sum of weights below 1, so no max(n, 1) guard
+        w = np.where(n > 0, nb / np.where(n > 0, n, 1), 0.0)
     return ma + (mb - ma) * w
 
 
 def merge(a: Moments, b: Moments) -> Moments:
-    """Chan-Golub-LeVeque pairwise merge of two partial results."""
-    n = a.n + b.n
-    if a.n == 0:
+    """Chan-Golub-LeVeque pairwise merge of two partial results.
+
+    The update is written with the totals ``a.total``, ``b.total`` (rows, or
+    sums of row weights), which makes it the weighted form of the same update
+    (West 1979, Comm. ACM 22; Schubert & Gertz 2018, SSDBM, eq. 22-23).
+    """
+    if (a.weight is None) != (b.weight is None):
+        raise ValueError("merge: one part is weighted and the other is not")
+    weighted = a.weight is not None
+    wa, wb = a.total, b.total
+    if wa == 0:
         mean, m2 = b.mean, b.m2
-    elif b.n == 0:
+    elif wb == 0:
         mean, m2 = a.mean, a.m2
     else:
+        w = wa + wb
         delta = b.mean - a.mean
-        mean = a.mean + delta * (b.n / n)
-        w = a.n * b.n / n
-        m2 = a.m2 + b.m2 + (np.outer(delta, delta) * w if a.full else delta * delta * w)
+        mean = a.mean + delta * (wb / w)
+        f = wa * wb / w
+        m2 = a.m2 + b.m2 + (np.outer(delta, delta) * f if a.full else delta * delta * f)
+    valid_a = a.valid_weight if weighted else a.valid_n
+    valid_b = b.valid_weight if weighted else b.valid_n
     return Moments(
-        n=n,
+        n=a.n + b.n,
         mean=mean,
         m2=m2,
         missing=a.missing + b.missing,
         valid_n=a.valid_n + b.valid_n,
-        valid_mean=_merge_means(a.valid_n, a.valid_mean, b.valid_n, b.valid_mean),
+        valid_mean=_merge_means(valid_a, a.valid_mean, valid_b, b.valid_mean),
         rows_seen=a.rows_seen + b.rows_seen,
+        weight=a.weight + b.weight if weighted else None,
+        weight2=a.weight2 + b.weight2 if weighted else None,
+        valid_weight=a.valid_weight + b.valid_weight if weighted else None,
     )
 
 
@@ -188,11 +227,12 @@ def covariance_from(m: Moments, center: bool, scale: np.ndarray | None) -> np.nd
     ``M2 / (n - 1)`` (about the mean), or ``(M2 + n mu mu^T) / (n - 1)``
     (about zero) when ``center`` is false; then divided on both sides by
     ``scale`` (the standard deviations) when given, which makes it exactly the
-    correlation matrix.
+    correlation matrix.  Weighted rows: ``n`` is the sum of the weights.
     """
-    c = m.symmetric() / (m.n - 1)
+    t = m.total
+    c = m.symmetric() / (t - 1)
     if not center:
-        c = c + np.outer(m.mean, m.mean) * (m.n / (m.n - 1))
+        c = c + np.outer(m.mean, m.mean) * (t / (t - 1))
     if scale is not None:
         c = c / scale[:, None] / scale[None, :]
     return c

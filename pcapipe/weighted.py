@@ -1,0 +1,128 @@
+"""Weighted statistics: frequency weights on rows, multiplicative weights on features.
+
+Row weights (``input.row_weight``) are *frequency* weights: a row of weight
+``w_i`` counts as ``w_i`` copies of itself, so with ``W = sum(w)``::
+
+    mean = sum_i w_i x_i / W
+    C    = sum_i w_i (x_i - mean)(x_i - mean)^T / (W - 1)
+
+and integer weights give exactly the unweighted answer on the data with each
+row repeated ``w_i`` times (numpy's ``np.cov(..., fweights=w)``).  Other
+conventions differ only by a scalar factor on C, so loadings, shares and
+scores' directions are the same and only eigenvalues are rescaled:
+
+* reliability (analytic) weights, numpy's ``np.cov(..., aweights=w)``:
+  denominator ``W - W2 / W`` with ``W2 = sum(w^2)``; multiply our eigenvalues
+  by ``(W - 1) / (W - W2 / W)`` (:func:`reliability_factor`);
+* weights normalised to a distribution (population form): denominator ``W``;
+  multiply by ``(W - 1) / W``.
+
+Rows of weight 0 add nothing to the sums (they still get scores).
+
+The moments are computed per batch about the batch's weighted mean, with the
+corrected two-pass rule (Chan, Golub & LeVeque 1983, Am. Stat. 37, eq. 1.7,
+weighted), and merged by the weighted Chan-Golub-LeVeque update in
+:func:`pcapipe.moments.merge` (West 1979, "Updating mean and variance
+estimates: an improved method", Comm. ACM 22; Schubert & Gertz 2018,
+"Numerically stable parallel computation of (co-)variance", SSDBM).
+
+Feature weights (``model.feature_weights``) multiply each preprocessed
+feature (after centring and any scaling): with ``F = diag(f)`` the matrix
+decomposed is ``F C F``, and scores are ``(F x~) @ loadings``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .moments import Moments, _gram
+
+__all__ = ["weighted_batch_moments", "weight_features", "reliability_factor"]
+
+
+def _missing_rows(x, w, missing, fill):
+    """Apply the missing rule; returns ``x, w`` and the per-feature counts, valid weight and mean."""
+    n_all, d = x.shape
+    finite = np.isfinite(x)
+    miss = (~finite).sum(axis=0).astype(np.int64)
+    valid_weight = w @ finite
+    valid_mean = (w @ np.where(finite, x, 0.0)) / np.where(valid_weight > 0, valid_weight, 1.0)
+    if missing == "impute-mean" and fill is not None:
+        x = np.where(finite, x, fill)
+    else:
+        ok = finite.all(axis=1)
+        x, w = x[ok], w[ok]
+    return x, w, miss, valid_weight, valid_mean
+
+
+def weighted_batch_moments(x: np.ndarray, w: np.ndarray, full: bool, missing: str,
+                           fill: np.ndarray | None = None) -> Moments:
+    """Weighted moments of one decoded batch (frequency weights).
+
+    Parameters
+    ----------
+    x : ndarray (n, d) float64
+        May hold NaN/inf.  Overwritten when writable.
+    w : ndarray (n,)
+        Row weights, finite and >= 0 (the reader checks them).
+    full, missing, fill
+        As in :func:`pcapipe.moments.batch_moments`.
+
+    Returns
+    -------
+    Moments
+        ``n`` counts the rows of positive weight that entered the sums;
+        ``weight`` and ``weight2`` are the sums of their weights and squares.
+
+    Notes
+    -----
+    ``M2 = (sqrt(w) xc)^T (sqrt(w) xc)`` goes to BLAS ``syrk`` like the
+    unweighted Gram: the only extra work is one n x d scaling.
+    """
+    n_all, d = x.shape
+    w = np.asarray(w, dtype=np.float64)
+    miss = np.zeros(d, dtype=np.int64)
+    valid_weight = valid_mean = None
+    if not np.isfinite(x.sum(axis=0)).all():
+        x, w, miss, valid_weight, valid_mean = _missing_rows(x, w, missing, fill)
+    pos = w > 0
+    if not pos.all():
+        x, w = x[pos], w[pos]  # weight 0: no part in the fit
+    total = float(w.sum())
+    if x.shape[0] == 0:
+        part = Moments.empty(d, full, weighted=True)
+    else:
+        if not x.flags.writeable:
+            x = x.copy()
+        mean = (w @ x) / total
+        x -= mean
+        root = np.sqrt(w)
+        x *= root[:, None]
+        # corrected two-pass: remove the rounding error of the first mean
+        r = (root @ x) / total
+        m2 = _gram(x) if full else np.einsum("ij,ij->j", x, x)
+        m2 -= (np.outer(r, r) if full else r * r) * total
+        part = Moments(x.shape[0], mean + r, m2, miss, np.zeros(d, np.int64), np.zeros(d), n_all,
+                       weight=total, weight2=float(w @ w))
+    part.missing = miss
+    part.valid_n = n_all - miss
+    part.valid_weight = valid_weight if valid_weight is not None else np.full(d, total)
+    part.valid_mean = valid_mean if valid_mean is not None else part.mean.copy()
+    part.rows_seen = n_all
+    return part
+
+
+def weight_features(c: np.ndarray, f: np.ndarray | None) -> np.ndarray:
+    """``F C F`` for ``F = diag(f)``; ``c`` unchanged when there are no feature weights."""
+    if f is None:
+        return c
+    return c * f[:, None] * f[None, :]
+
+
+def reliability_factor(total: float, total2: float) -> float:
+    """Factor from our eigenvalues (denominator ``W - 1``) to reliability weights (``W - W2/W``).
+
+    ``np.cov(x, aweights=w) == (W - 1) / (W - W2 / W) * np.cov(x, fweights=w)``
+    for integer ``w`` (numpy documentation of ``cov``, "aweights").
+    """
+    return (total - 1.0) / (total - total2 / total)
