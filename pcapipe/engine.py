@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import contextlib
 import logging
+import os
 import shutil
 import time
 import warnings
@@ -68,8 +69,12 @@ def prepare(config, overrides=()) -> Prepared:
     t0 = time.perf_counter()
     cfg = config if isinstance(config, Config) else load_config(config, overrides)
     writer = RunWriter(resolve_path(cfg, cfg.output.directory), cfg.output.overwrite)
+    # the output must not overlap the inputs or the config (checked before a byte is read)
+    writer.check_overlap([resolve_path(cfg, p) for p in cfg.input.paths],
+                         cfg.source if os.path.isfile(cfg.source) else None)
     writer.check()
     plan = make_plan(cfg)
+    writer.check_inputs([f.path for f in plan.files])
     if plan.n_rows < 2:
         raise InputError(f"input.paths: the input has {plan.n_rows} row(s) in {len(plan.files)} file(s); "
                          "PCA needs at least 2 rows: add rows or files to input.paths")
