@@ -43,6 +43,7 @@ class InputConfig:
     vector_column: str = ""           # instead of features: one list column of floats
     keep: tuple[str, ...] = ()        # identifier columns copied into the scores
     missing: str = "fail"             # see CHOICES
+    row_weight: str = ""              # optional numeric column of frequency weights (>= 0)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -53,6 +54,7 @@ class ModelConfig:
     center: bool = True
     scale: bool = False
     method: str = "auto"              # see CHOICES
+    feature_weights: str = ""         # optional table (Parquet or CSV) of feature, weight
     tolerance: float = 1e-9           # relative residual, in (0, 1)
     max_iterations: int = 300
     oversample: int = 8
@@ -124,9 +126,10 @@ _EXAMPLES: dict[str, Any] = {
     "input.paths": ["data/*.parquet"], "input.features": ["ch_*"],
     "input.exclude": ["ch_bad"], "input.keep": ["id"],
     "input.vector_column": "embedding", "compute.memory_limit": "4GiB",
+    "input.row_weight": "weight", "model.feature_weights": "feature_weights.csv",
 }
 # Notebook users pass pathlib objects for these; anywhere else it is a mistake.
-_PATH_KEYS = frozenset({"input.paths", "output.directory"})
+_PATH_KEYS = frozenset({"input.paths", "output.directory", "model.feature_weights"})
 _TOML_TYPES = {bool: "boolean", int: "integer", float: "float", str: "string",
                list: "array", tuple: "array", dict: "table", datetime.datetime: "datetime",
                datetime.date: "date", datetime.time: "time"}
@@ -339,6 +342,10 @@ def _validate(ctx: _Context, raw: Mapping[str, Any]) -> dict[str, Any]:
                  f"{_show(inp.vector_column)} is set together with input.features "
                  f"{_show(list(inp.features))}; choose one: features for numeric "
                  "columns, or vector_column for one list column")
+    if inp.row_weight and inp.row_weight == inp.vector_column:
+        ctx.fail("input.row_weight",
+                 f"{_show(inp.row_weight)} is also input.vector_column; the row weights "
+                 "need a numeric column of their own")
     return built
 
 

@@ -37,6 +37,7 @@ from .plan import Plan, make_plan
 from .reader import batch_rows_for
 from .solver import SolverResult, solve
 from .tasks import Transform
+from .weighted import check_total_weight, feature_weight_array, input_scale, weight_features
 from .writer import RunWriter
 
 __all__ = ["run", "prepare", "Prepared", "check_components"]
@@ -102,6 +103,8 @@ def _moments_pass(p: Prepared, passes: DataPasses, full: bool) -> Moments:
         log.info("missing values in %d feature(s): %s", int((m.missing > 0).sum()), mode)
         if mode == "impute-mean":
             m = passes.moments(full, mode, fill=m.valid_mean)
+    if m.weight is not None:
+        check_total_weight(p.plan, m)
     if m.n < 2:
         raise InputError(f"input: {m.n} row(s) left after input.missing = {mode!r}; PCA needs at least 2 rows: "
                          'use input.missing = "impute-mean" or clean the data')
@@ -127,7 +130,7 @@ def _preprocessing(p: Prepared, m: Moments) -> tuple[Transform, np.ndarray, np.n
     if m.missing.any():
         missing = "impute" if p.cfg.input.missing == "impute-mean" else "drop"
     shift = mean if p.cfg.model.center else np.zeros_like(mean)
-    inv = (1.0 / scale_used) if p.cfg.model.scale else None
+    inv = input_scale((1.0 / scale_used) if p.cfg.model.scale else None, p.plan.feature_weights)
     # an imputed entry is the feature's mean: 0 once centered, but not without centering
     fill = (mean - shift) * (inv if inv is not None else 1.0)
     return Transform(shift, inv, missing, fill), std, scale_used
@@ -311,11 +314,13 @@ class _Job:
         p = self.p
         scale = scale_used if p.cfg.model.scale else None
         d = p.plan.n_features
+        fw = feature_weight_array(p.plan.feature_weights)
         if choice.method == "covariance":
-            op = DenseOperator(covariance_from(m, p.cfg.model.center, scale))
+            op = DenseOperator(weight_features(covariance_from(m, p.cfg.model.center, scale), fw))
             cache = "not needed (one pass)"
         else:
-            op = MatrixFreeOperator(lambda v: passes.product(transform, v), m.n, _trace(m, p.cfg.model.center, scale), d)
+            op = MatrixFreeOperator(lambda v: passes.product(transform, v), m.total,
+                                    _trace(m, p.cfg.model.center, scale, fw), d)
             cache = None
         if self.state.get("stage") == "solved":
             return self._solution(), op.trace, self.state.get("cache", cache)
@@ -367,12 +372,14 @@ def _solution_arrays(res: SolverResult) -> dict:
             "block": np.array(res.block)}
 
 
-def _trace(m: Moments, center: bool, scale) -> float:
+def _trace(m: Moments, center: bool, scale, fw=None) -> float:
     var = m.variance()
     if not center:
-        var = var + m.mean**2 * (m.n / (m.n - 1))
+        var = var + m.mean**2 * (m.total / (m.total - 1))
     if scale is not None:
         var = var / scale**2
+    if fw is not None:
+        var = var * fw**2
     return float(var.sum())
 
 

@@ -13,6 +13,7 @@ import numpy as np
 import pyarrow as pa
 
 from .config import config_to_dict
+from .weighted import weights_record
 from .writer import FORMAT_VERSION
 
 __all__ = ["build_tables", "manifest_for", "component_names", "package_versions"]
@@ -27,7 +28,7 @@ def build_tables(plan, m, res, vectors, std, scale_used, total_variance) -> dict
     k = vectors.shape[1]
     names = component_names(k)
     values = res.values
-    n = m.n
+    n = m.total  # weighted rows: the sum of the (frequency) weights
     ratio = values / total_variance if total_variance > 0 else np.full(k, np.nan)
     components = pa.table({
         "component": names,
@@ -47,6 +48,7 @@ def build_tables(plan, m, res, vectors, std, scale_used, total_variance) -> dict
         "std": std,
         "scale_used": scale_used,
         "missing": m.missing.astype(np.int64),
+        "weight": np.ones(plan.n_features) if plan.feature_weights is None else np.asarray(plan.feature_weights),
     })
     return {"components.parquet": components, "loadings.parquet": loadings, "features.parquet": features}
 
@@ -78,6 +80,7 @@ def manifest_for(p, m, res, choice, total_variance, passes, cache, info, timings
         "inputs": p.plan.inputs_record(),
         "n_rows_read": int(m.rows_seen),
         "n_samples": int(m.n),
+        "weights": weights_record(p.plan, m, p.cfg.model.feature_weights),
         "n_features": int(p.plan.n_features),
         "n_components": int(res.values.size),
         "total_variance": float(total_variance),

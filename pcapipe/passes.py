@@ -52,7 +52,8 @@ class DataPasses:
     def __init__(self, plan: Plan, runner, batch_rows: int):
         self.plan = plan
         self.runner = runner
-        self.spec = ReadSpec(plan.columns, plan.vector_column, plan.n_features, batch_rows, plan.keep)
+        self.spec = ReadSpec(plan.columns, plan.vector_column, plan.n_features, batch_rows, plan.keep,
+                             weight_column=plan.row_weight)
         self.count = 0
         self._cache = None
         self._cache_transform = None

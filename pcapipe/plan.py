@@ -17,8 +17,9 @@ from dataclasses import dataclass
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .config import Config
+from .config import Config, resolve_path
 from .errors import InputError
+from .weight_table import read_feature_weights
 
 log = logging.getLogger("pcapipe")
 
@@ -54,6 +55,8 @@ class Plan:
     ``columns`` are the Parquet columns holding features (one per feature, or
     the single vector column); ``features`` are the feature names used in the
     outputs (``name[i]`` for the entries of a vector column).
+    ``row_weight`` is the column of row weights ("" for none) and
+    ``feature_weights`` the weight of each feature (None for none).
     """
 
     files: tuple[FileInfo, ...]
@@ -63,6 +66,8 @@ class Plan:
     vector_column: str
     keep: tuple[str, ...]
     itemsize: int
+    row_weight: str = ""
+    feature_weights: tuple[float, ...] | None = None
 
     @property
     def n_rows(self) -> int:
@@ -204,7 +209,11 @@ def _check_keep(cfg: Config, schema: pa.Schema, path: str) -> None:
 
 def _select_features(cfg: Config, schema: pa.Schema, path: str) -> tuple[str, ...]:
     keep = set(cfg.input.keep)
-    names = [n for n in schema.names if n not in keep]
+    weight = cfg.input.row_weight
+    if weight and weight in cfg.input.features:
+        raise InputError(f"{path}: input.features names the input.row_weight column {weight!r}; the row "
+                         "weights are never a feature: remove it from input.features")
+    names = [n for n in schema.names if n not in keep and n != weight]
     if cfg.input.features:
         for p in cfg.input.features:
             if not any(fnmatch.fnmatchcase(n, p) for n in names):
@@ -300,7 +309,10 @@ def make_plan(cfg: Config) -> Plan:
         columns = _select_features(cfg, schema0, paths[0])
         features = columns
         itemsize = max(schema0.field(c).type.bit_width // 8 for c in columns)
-    types = {c: schema0.field(c).type for c in (*columns, *cfg.input.keep)}
+    weight = cfg.input.row_weight
+    if weight:
+        _check_row_weight(schema0, weight, paths[0])
+    types = {c: schema0.field(c).type for c in (*columns, *cfg.input.keep, *([weight] if weight else []))}
     files, blocks = [], []
     for fi, path in enumerate(paths):
         pf = first if fi == 0 else _open_footer(path)
@@ -312,4 +324,19 @@ def make_plan(cfg: Config) -> Plan:
         for rg, n in enumerate(rg_rows):
             if n:
                 blocks.append(Block(len(blocks), fi, path, rg, n))
-    return Plan(tuple(files), tuple(blocks), features, columns, vec, tuple(cfg.input.keep), max(itemsize, 1))
+    fw = None
+    if cfg.model.feature_weights:
+        fw = read_feature_weights(resolve_path(cfg, cfg.model.feature_weights), features)
+    return Plan(tuple(files), tuple(blocks), features, columns, vec, tuple(cfg.input.keep), max(itemsize, 1),
+                weight, fw)
+
+
+def _check_row_weight(schema: pa.Schema, column: str, path: str) -> None:
+    """``input.row_weight`` must be a numeric column (presence in the other files: _check_file_schema)."""
+    if schema.get_field_index(column) < 0:
+        raise InputError(f"{path}: input.row_weight column {column!r} does not exist; columns are "
+                         f"{_preview(schema.names)}; fix input.row_weight")
+    t = schema.field(column).type
+    if not _is_numeric(t):
+        raise InputError(f"{path}: input.row_weight column {column!r} has type {t}, not numeric; the row "
+                         "weights must be numbers >= 0")

@@ -21,6 +21,7 @@ from .errors import InputError, OutputError
 from .plan import resolve_inputs
 from .reader import ReadSpec, batch_rows_for, batch_to_array
 from .tasks import Transform, score_rows
+from .weighted import input_scale
 
 __all__ = ["Projector", "projector_for", "project_frame", "project_paths", "project_to_directory"]
 
@@ -50,6 +51,8 @@ def projector_for(result) -> Projector:
     spec = ReadSpec(columns, vec, d, batch, tuple(cfg_in.get("keep", ())))
     shift = f["mean"].to_numpy() if model.get("center", True) else np.zeros(d)
     inv = 1.0 / f["scale_used"].to_numpy() if model.get("scale", False) else None
+    if "weight" in f and model.get("feature_weights"):  # the run's feature weights, as in its scores pass
+        inv = input_scale(inv, f["weight"].to_numpy())
     # impute-mean puts the mean in place of a gap; after centring that is 0, without centring it is not
     fill = (f["mean"].to_numpy() - shift) * (inv if inv is not None else 1.0)
     transform = Transform(shift, inv, _MISSING[cfg_in.get("missing", "fail")], fill)

@@ -24,7 +24,8 @@ import pyarrow.parquet as pq
 
 from .errors import InputError
 
-__all__ = ["batch_rows_for", "ReadSpec", "iter_block", "iter_file", "batch_to_array", "table_to_array"]
+__all__ = ["batch_rows_for", "ReadSpec", "iter_block", "iter_file", "batch_to_array", "table_to_array",
+           "split_weights"]
 
 
 # Decoded rows per batch: 8 MiB of float64.  Measured on 1M x 256 float64 (see
@@ -56,13 +57,41 @@ def batch_rows_for(n_features: int, memory_per_worker: int | None = None) -> int
 
 @dataclass(frozen=True)
 class ReadSpec:
-    """What to decode: the feature columns, how wide, and how many rows at a time."""
+    """What to decode: the feature columns, how wide, and how many rows at a time.
+
+    With a ``weight_column`` the decoded batch has ``n_features + 1`` columns,
+    the last holding the row weights (checked finite and >= 0, never
+    transformed); :func:`split_weights` separates them.
+    """
 
     columns: tuple[str, ...]
     vector_column: str
     n_features: int
     batch_rows: int
     keep: tuple[str, ...] = ()
+    weight_column: str = ""
+
+
+def split_weights(x: np.ndarray, spec: ReadSpec) -> tuple[np.ndarray, np.ndarray | None]:
+    """``(features, row weights)`` of a decoded batch; the weights are None without a weight column."""
+    if not spec.weight_column:
+        return x, None
+    d = spec.n_features
+    return x[:, :d], x[:, d]
+
+
+def _weights_into(out: np.ndarray, arr, where: str, column: str, first_row: int) -> None:
+    """Decode the row weights into ``out``; a null, negative, NaN or infinite weight is an error naming its row."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    if arr.null_count:
+        arr = pc.cast(arr, pa.float64()).fill_null(np.nan)
+    out[:] = arr.to_numpy(zero_copy_only=False)
+    if out.size and out.min() >= 0 and np.isfinite(out.max()):  # NaN fails the first test
+        return
+    i = int(np.flatnonzero(~(np.isfinite(out) & (out >= 0)))[0])
+    raise InputError(f"{where}: input.row_weight column {column!r}, row {first_row + i}: weight {out[i]!r} is "
+                     "not a finite number >= 0; fix the row, or give it weight 0 to leave it out of the fit")
 
 
 def _column_into(out: np.ndarray, arr: pa.ChunkedArray | pa.Array, shift, inv_scale) -> None:
@@ -136,6 +165,8 @@ def batch_to_array(batch, spec: ReadSpec, where: str, shift=None, inv_scale=None
         A vector column has a null row or a vector of the wrong length.
     """
     n = batch.num_rows
+    if spec.weight_column:
+        return _with_weights(batch, spec, where, shift, inv_scale, first_row)
     if spec.vector_column:
         x = _vector_array(batch.column(spec.vector_column), spec.n_features,
                           f"{where}: column {spec.vector_column!r}", first_row)
@@ -157,6 +188,21 @@ def batch_to_array(batch, spec: ReadSpec, where: str, shift=None, inv_scale=None
             None if shift is None else shift[j],
             None if inv_scale is None else inv_scale[j],
         )
+    return out
+
+
+def _with_weights(batch, spec: ReadSpec, where: str, shift, inv_scale, first_row: int) -> np.ndarray:
+    """The features and, as one more column, the row weights, in one Fortran-ordered buffer."""
+    d = spec.n_features
+    out = np.empty((batch.num_rows, d + 1), dtype=np.float64, order="F")
+    plain = ReadSpec(spec.columns, spec.vector_column, d, spec.batch_rows, spec.keep)
+    if spec.vector_column:
+        out[:, :d] = batch_to_array(batch, plain, where, shift, inv_scale, first_row)
+    else:
+        for j, name in enumerate(spec.columns):
+            _column_into(out[:, j], batch.column(name), None if shift is None else shift[j],
+                         None if inv_scale is None else inv_scale[j])
+    _weights_into(out[:, d], batch.column(spec.weight_column), where, spec.weight_column, first_row)
     return out
 
 
@@ -205,15 +251,17 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
         a column since it was planned, or holds a bad vector.
     """
     pf = _open(path)
-    columns = list(spec.columns) + (list(spec.keep) if with_keep else [])
+    columns = list(dict.fromkeys([*spec.columns, *([spec.weight_column] if spec.weight_column else []),
+                                  *(spec.keep if with_keep else [])]))
     present = set(pf.schema_arrow.names)  # schema_arrow is rebuilt on every access: read it once
     gone = [c for c in columns if c not in present]
     if gone:
         raise InputError(f"{path}: column {gone[0]!r} is gone; the file changed after the run was "
                          "planned, start the run again")
     try:
-        # Only vector errors name a row, so scalar blocks skip the row-group offsets.
-        row = _row_group_starts(path, os.stat(path).st_mtime_ns)[row_group] if spec.vector_column else 0
+        # Only vector and weight errors name a row, so other blocks skip the row-group offsets.
+        named = spec.vector_column or spec.weight_column
+        row = _row_group_starts(path, os.stat(path).st_mtime_ns)[row_group] if named else 0
         if whole or pf.metadata.row_group(row_group).total_byte_size <= WHOLE_ROW_GROUP_BYTES:
             whole = pf.read_row_group(row_group, columns=columns, use_threads=False)
             batches = (whole.slice(i, spec.batch_rows) for i in range(0, whole.num_rows, spec.batch_rows))

@@ -97,6 +97,7 @@ def summary_rows(manifest: dict) -> list[tuple[str, str]]:
                                                        if inp.get("vector_column") else "")),
         ("components (k)", f"{m.get('n_components')} (asked for {model.get('components')})"),
         ("preprocessing", prep),
+        ("weights", weights_text(m.get("weights"))),
         ("total variance", f"{m.get('total_variance', float('nan')):.6g}"),
         ("method", f"{m.get('method')}: {m.get('method_reason', '')}"),
         ("passes over the data", str(m.get("passes_over_data"))),
@@ -109,6 +110,18 @@ def summary_rows(manifest: dict) -> list[tuple[str, str]]:
         ("created", str(m.get("created", ""))),
         ("config", str(m.get("config_source", ""))),
     ]
+
+
+def weights_text(rec: dict | None) -> str:
+    """One line saying whether and how the data were weighted (manifest "weights")."""
+    rec = rec or {}
+    parts = []
+    if rec.get("row_weight"):
+        parts.append(f"rows weighted by column {rec['row_weight']!r} (frequency weights, sum {rec.get('sum', 0):.6g}, "
+                     f"{rec.get('rows_with_positive_weight')} rows with weight > 0)")
+    if rec.get("feature_weights"):
+        parts.append(f"features weighted by {rec['feature_weights']} (after centring and scaling)")
+    return "; ".join(parts) if parts else "none (unweighted)"
 
 
 def _check_color_by(manifest: dict, color_by: str | None) -> None:

@@ -195,13 +195,14 @@ class Result:
         m, f = self.manifest, self.features
         v = self.loadings.to_numpy()
         lam = self.explained_variance.to_numpy()
-        scale_used = f["scale_used"].to_numpy()
-        sd = f["std"].to_numpy() / scale_used  # std of the analysed feature
+        # the analysed feature is x * factor: 1 / scale_used, times the feature weight (README "Weights")
+        factor = (f["weight"].to_numpy() if "weight" in f else 1.0) / f["scale_used"].to_numpy()
+        sd = f["std"].to_numpy() * factor  # std of the analysed feature
         cov = v * lam
         var_s = lam.copy()
         if not m["config"]["model"].get("center", True):
-            n = int(m["n_samples"])
-            mu = f["mean"].to_numpy() / scale_used
+            n = float((m.get("weights") or {}).get("sum") or m["n_samples"])
+            mu = f["mean"].to_numpy() * factor
             proj = mu @ v
             cov = cov - (n / (n - 1)) * np.outer(mu, proj)
             var_s = var_s - (n / (n - 1)) * proj**2

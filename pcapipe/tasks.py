@@ -17,7 +17,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .moments import Moments, batch_moments, tree_merge
-from .reader import ReadSpec, iter_block, iter_file
+from .reader import ReadSpec, iter_block, iter_file, split_weights
 
 __all__ = ["Transform", "prepare_rows", "score_rows", "moments_task", "product_task", "scores_task", "decode_task",
            "product_cached_task", "add", "limit_blas", "probe_task"]
@@ -87,14 +87,30 @@ def moments_task(path: str, row_group: int, spec: ReadSpec, full: bool, missing:
                  fill=None, blas_threads: int = 0) -> Moments:
     """Moments of one block, batches merged pairwise in order."""
     limit_blas(blas_threads)
-    parts = [batch_moments(x, full, missing, fill) for x, _ in iter_block(path, row_group, spec)]
+    parts = []
+    for xb, _ in iter_block(path, row_group, spec):
+        x, w = split_weights(xb, spec)
+        parts.append(batch_moments(x, full, missing, fill, weights=w))
     if not parts:
-        return Moments.empty(spec.n_features, full)
+        return Moments.empty(spec.n_features, full, weighted=bool(spec.weight_column))
     return tree_merge(parts)
 
 
-def _product(x: np.ndarray, v: np.ndarray) -> np.ndarray:
-    return x.T @ (x @ v)
+def _rows(xb: np.ndarray, spec: ReadSpec, t: Transform) -> tuple[np.ndarray, np.ndarray | None]:
+    """The rows to use of a decoded batch and their row weights (None when unweighted)."""
+    x, w = split_weights(xb, spec)
+    x, ok = prepare_rows(x, t)
+    if w is not None and ok is not None:
+        w = w[ok]
+    return x, w
+
+
+def _product(x: np.ndarray, v: np.ndarray, w: np.ndarray | None = None) -> np.ndarray:
+    """``X^T diag(w) X V``: the weights scale the n x b product, not the n x d data."""
+    y = x @ v
+    if w is not None:
+        y *= w[:, None]
+    return x.T @ y
 
 
 def product_task(path: str, row_group: int, spec: ReadSpec, t: Transform, v: np.ndarray,
@@ -102,16 +118,25 @@ def product_task(path: str, row_group: int, spec: ReadSpec, t: Transform, v: np.
     """``sum over batches of Xb~^T (Xb~ V)`` for one block, Xb~ transformed on the fly."""
     limit_blas(blas_threads)
     out = np.zeros((spec.n_features, v.shape[1]))
-    for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale):
-        x, _ = prepare_rows(x, t)
-        out += _product(x, v)
+    for xb, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale):
+        x, w = _rows(xb, spec, t)
+        out += _product(x, v, w)
     return out
 
 
 def decode_task(path: str, row_group: int, spec: ReadSpec, t: Transform, blas_threads: int = 0) -> np.ndarray:
-    """A whole block decoded and transformed, to be kept in worker memory between passes."""
+    """A whole block decoded and transformed, to be kept in worker memory between passes.
+
+    Weighted rows are kept as ``sqrt(w) x`` (rows of weight 0 left out), so
+    that the cached product ``X^T X V`` is the weighted one.
+    """
     limit_blas(blas_threads)
-    parts = [prepare_rows(x, t)[0] for x, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale, whole=True)]
+    parts = []
+    for xb, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale, whole=True):
+        x, w = _rows(xb, spec, t)
+        if w is not None:
+            x = x[w > 0] * np.sqrt(w[w > 0])[:, None]
+        parts.append(x)
     if len(parts) == 1:
         return parts[0]
     return np.concatenate(parts, axis=0) if parts else np.zeros((0, spec.n_features))
@@ -142,8 +167,8 @@ def scores_task(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: n
     writer = None
     rows = 0
     try:
-        for x, keep in iter_file(path, row_groups, spec, t.shift, t.inv_scale, with_keep=True):
-            s = score_rows(x, t, loadings)
+        for xb, keep in iter_file(path, row_groups, spec, t.shift, t.inv_scale, with_keep=True):
+            s = score_rows(split_weights(xb, spec)[0], t, loadings)
             arrays = list(keep.columns) if keep is not None else []
             labels = list(keep.schema.names) if keep is not None else []
             arrays += [pa.array(s[:, j]) for j in range(s.shape[1])]

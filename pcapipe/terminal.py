@@ -47,6 +47,7 @@ def check_report(config, overrides=()) -> str:
         f"features    {d}" + (f" from vector column {plan.vector_column!r}" if plan.vector_column else
                               f": {', '.join(plan.features[:6])}{', ...' if d > 6 else ''}"),
         f"keep        {', '.join(plan.keep) or '(none)'}",
+        f"weights     rows: {plan.row_weight or '(none)'}; features: {cfg.model.feature_weights or '(none)'}",
         f"components  {comp}" + ("" if isinstance(comp, int) else " of the variance"),
         f"method      {choice.method}: {choice.reason}",
         f"compute     {cfg.compute.scheduler}, {workers} worker(s), {format_size(memory)} {memory_note}",

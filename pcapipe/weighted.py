@@ -35,9 +35,11 @@ from __future__ import annotations
 
 import numpy as np
 
+from .errors import InputError
 from .moments import Moments, _gram
 
-__all__ = ["weighted_batch_moments", "weight_features", "reliability_factor"]
+__all__ = ["weighted_batch_moments", "weight_features", "reliability_factor", "check_total_weight",
+           "feature_weight_array", "input_scale", "weights_record"]
 
 
 def _missing_rows(x, w, missing, fill):
@@ -126,3 +128,52 @@ def reliability_factor(total: float, total2: float) -> float:
     for integer ``w`` (numpy documentation of ``cov``, "aweights").
     """
     return (total - 1.0) / (total - total2 / total)
+
+
+def feature_weight_array(weights) -> np.ndarray | None:
+    """The plan's feature weights as an array (None when there are none)."""
+    return None if weights is None else np.asarray(weights, dtype=np.float64)
+
+
+def input_scale(inv_scale: np.ndarray | None, feature_weights) -> np.ndarray | None:
+    """The per-feature factor applied after centring: ``1 / std`` (if scaling) times the feature weight."""
+    f = feature_weight_array(feature_weights)
+    if f is None:
+        return inv_scale
+    return f if inv_scale is None else inv_scale * f
+
+
+def check_total_weight(plan, m: Moments) -> None:
+    """The row weights must leave something to fit: a sum above 1 (the denominator is ``sum(w) - 1``).
+
+    A sum within 1e-6 of 1 counts as 1: weights normalised to a distribution
+    sum to 1 only up to rounding, and ``sum(w) - 1`` would then be noise.
+
+    Raises
+    ------
+    InputError
+        Every weight is 0 (on the rows kept), or they sum to 1 or less.
+    """
+    where = f"input.row_weight: column {plan.row_weight!r}"
+    if m.n == 0:
+        raise InputError(f"{where}: no row with a positive weight is left of the {m.rows_seen} rows read "
+                         f"({len(plan.files)} file(s)); at least two rows need a positive weight")
+    # weights normalised to sum to 1 land a few ulps either side of it: both are refused
+    if m.total - 1.0 <= 1e-6:
+        raise InputError(f"{where}: the weights sum to {m.total:.6g}, but frequency weights (denominator "
+                         "sum(w) - 1) need a sum above 1: give counts, e.g. multiply normalised weights "
+                         "by the number of rows")
+
+
+def weights_record(plan, m: Moments, feature_weights_path: str) -> dict:
+    """What the manifest says about the weights (README "Weights")."""
+    rec = {"row_weight": plan.row_weight or None, "feature_weights": feature_weights_path or None}
+    if m.weight is not None:
+        rec.update({
+            "convention": "frequency: covariance denominator sum(w) - 1",
+            "sum": m.weight, "sum_of_squares": m.weight2,
+            "rows_with_positive_weight": int(m.n),
+            # multiply eigenvalues by this for the reliability-weight convention (numpy aweights)
+            "to_reliability_weights": reliability_factor(m.weight, m.weight2),
+        })
+    return rec

@@ -79,10 +79,12 @@ DEFAULTS = [
     ("input.vector_column", ""),         # DESIGN.md: vector_column = ""
     ("input.keep", ()),                  # DESIGN.md: keep = []
     ("input.missing", "fail"),           # DESIGN.md: missing = "fail"
+    ("input.row_weight", ""),            # DESIGN.md: row_weight = ""
     ("model.components", 5),             # DESIGN.md: components = 5
     ("model.center", True),              # DESIGN.md: center = true
     ("model.scale", False),              # DESIGN.md: scale = false
     ("model.method", "auto"),            # DESIGN.md: method = "auto"
+    ("model.feature_weights", ""),       # DESIGN.md: feature_weights = ""
     ("model.tolerance", 1e-9),           # DESIGN.md: tolerance = 1e-9
     ("model.max_iterations", 300),       # DESIGN.md: max_iterations = 300
     ("model.oversample", 8),             # DESIGN.md: oversample = 8
@@ -526,9 +528,9 @@ def test_parse_memory_rejects(text, words):
 def test_round_trip_of_a_config_with_every_key_changed(tmp_path):
     raw = {
         "input": {"paths": ["a/*.parquet", "b"], "features": [], "exclude": ["x_*"],
-                  "vector_column": "emb", "keep": ["id"], "missing": "impute-mean"},
+                  "vector_column": "emb", "keep": ["id"], "missing": "impute-mean", "row_weight": "w"},
         "model": {"components": 0.95, "center": False, "scale": True,
-                  "method": "matrix-free", "tolerance": 1e-7, "max_iterations": 50,
+                  "method": "matrix-free", "feature_weights": "fw.csv", "tolerance": 1e-7, "max_iterations": 50,
                   "oversample": 0, "seed": 42},
         "compute": {"scheduler": "tcp://h:8786", "workers": 3, "memory_limit": "2GB",
                     "progress": False, "connect_timeout": 2.5},
