@@ -3,7 +3,7 @@
     import pcapipe
     res = pcapipe.run("configs/demo.toml")   # or a dict of the same shape
     res = pcapipe.load("runs/demo")
-    res.loadings, res.components, res.explained_variance_ratio, res.scores()
+    res.loadings, res.spectrum, res.features, res.scores()
 """
 
 from ._version import __version__
@@ -11,8 +11,8 @@ from .engine import run
 from .errors import (
     ClusterError,
     ConfigError,
-    ConvergenceWarning,
     InputError,
+    NotConvergedWarning,
     OutputError,
     PcapipeError,
     ResumeError,
@@ -32,5 +32,5 @@ __all__ = [
     "ClusterError",
     "ResumeError",
     "RunDirectoryError",
-    "ConvergenceWarning",
+    "NotConvergedWarning",
 ]

@@ -17,7 +17,7 @@ import traceback
 import warnings
 
 from ._version import __version__
-from .errors import ConfigError, ConvergenceWarning, PcapipeError
+from .errors import ConfigError, NotConvergedWarning, PcapipeError
 
 __all__ = ["main", "build_parser"]
 
@@ -123,8 +123,8 @@ def _runner_for(cfg, runners: dict, stack):
 def _report_run(res) -> None:
     m = res.manifest
     state = "converged" if m["converged"] else "NOT all converged"
-    print(f"{res.directory}: {m['n_components']} components of {m['n_samples']} rows x "
-          f"{m['n_features']} features, {m['method']}, {state}, "
+    print(f"{res.directory}: {m['components']} components of {m['rows']} rows x "
+          f"{m['features']} features, {m['method']}, {state}, "
           f"{m['timings']['total_seconds']:.1f} s")
 
 
@@ -196,8 +196,8 @@ def main(argv=None) -> int:
     _setup_logging(args)
     try:
         with warnings.catch_warnings():
-            # The engine logs each ConvergenceWarning already; once is enough.
-            warnings.simplefilter("ignore", ConvergenceWarning)
+            # The engine logs each NotConvergedWarning already; once is enough.
+            warnings.simplefilter("ignore", NotConvergedWarning)
             return _COMMANDS[args.command](args)
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)

@@ -5,7 +5,6 @@ of the outputs (see README, "Run directory"):
 
 * covariance denominator n - 1; ``scale = true`` divides by the ddof=1
   standard deviation, so the matrix is exactly the correlation matrix;
-* ``singular_value = sqrt((n - 1) * eigenvalue)``;
 * ``std_error = eigenvalue * sqrt(2 / n)``: the large-sample standard error of
   a sample eigenvalue, North, Bell, Cahalan & Moeng (1982), "Sampling errors
   in the estimation of empirical orthogonal functions", Mon. Wea. Rev. 110;

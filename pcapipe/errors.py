@@ -13,7 +13,7 @@ __all__ = [
     "ClusterError",
     "ResumeError",
     "RunDirectoryError",
-    "ConvergenceWarning",
+    "NotConvergedWarning",
 ]
 
 
@@ -45,5 +45,5 @@ class RunDirectoryError(PcapipeError):
     """A run directory is incomplete, edited, or of an unknown format version."""
 
 
-class ConvergenceWarning(UserWarning):
+class NotConvergedWarning(UserWarning):
     """Some requested components did not reach the tolerance."""

@@ -71,11 +71,11 @@ def history_array(history) -> np.ndarray:
 
 
 # -- figures -------------------------------------------------------------------
-def fig_scree(components: pd.DataFrame, total_variance: float, scaled: bool, n_features: int):
+def fig_scree(components: pd.DataFrame, total_variance: float, scaled: bool, d: int):
     """Eigenvalues with std-error bars, the broken-stick guide, and eigenvalue 1 for correlation PCA.
 
     Error bars are ``std_error = eigenvalue * sqrt(2/n)`` (North, Bell, Cahalan &
-    Moeng 1982, Mon. Wea. Rev. 110); the guide is ``broken_stick(n_features) *
+    Moeng 1982, Mon. Wea. Rev. 110); the guide is ``broken_stick(d) *
     total_variance``; the eigenvalue-1 line (Kaiser criterion, common practice)
     only means something when the features have unit variance.
     """
@@ -83,16 +83,16 @@ def fig_scree(components: pd.DataFrame, total_variance: float, scaled: bool, n_f
     x = np.arange(1, len(names) + 1)
     fig = _figure(7.0, 4.2)
     ax = fig.add_subplot()
-    ax.errorbar(x, components["explained_variance"].to_numpy(), yerr=components["std_error"].to_numpy(),
+    ax.errorbar(x, components["eigenvalue"].to_numpy(), yerr=components["std_error"].to_numpy(),
                 fmt="o-", capsize=3, color="tab:blue", label="eigenvalue \u00b1 std error")
-    stick = broken_stick(n_features)[: len(x)] * total_variance
+    stick = broken_stick(d)[: len(x)] * total_variance
     ax.plot(x, stick, "--", color="0.4", label="broken-stick expectation", gid="broken_stick")
     if scaled:
         ax.axhline(1.0, color="tab:red", lw=1, ls=":", label="eigenvalue 1 (Kaiser)", gid="kaiser")
     _ticks(ax, names)
     ax.set_ylim(bottom=0)
     ax.set_xlabel("component")
-    ax.set_ylabel("eigenvalue (explained variance)")
+    ax.set_ylabel("eigenvalue (variance of the component)")
     ax.set_title("Scree plot")
     ax.legend()
     return fig
@@ -102,10 +102,10 @@ def fig_cumulative(components: pd.DataFrame):
     """Each component's share (bars) and the cumulative share (line), with the LEVELS marked."""
     names = list(components.index)
     x = np.arange(1, len(names) + 1)
-    cum = components["cumulative_ratio"].to_numpy()
+    cum = components["cumulative_share"].to_numpy()
     fig = _figure(8.5, 4.2)
     ax = fig.add_subplot()
-    ax.bar(x, components["explained_variance_ratio"].to_numpy(), width=0.6, color="tab:blue", alpha=0.35,
+    ax.bar(x, components["share"].to_numpy(), width=0.6, color="tab:blue", alpha=0.35,
            label="share of each component")
     ax.plot(x, cum, "o-", color="tab:blue", label="cumulative share", gid="cumulative")
     for level, color in zip(LEVELS, ("tab:green", "tab:orange", "tab:red")):

@@ -16,31 +16,42 @@ from .config import config_to_dict
 from .weighted import weights_record
 from .writer import FORMAT_VERSION
 
-__all__ = ["build_tables", "manifest_for", "component_names", "package_versions"]
+__all__ = ["build_tables", "spectrum_table", "manifest_for", "component_names", "package_versions"]
 
 
 def component_names(k: int) -> list[str]:
     return [f"PC{i + 1}" for i in range(k)]
 
 
+def spectrum_table(values, residuals, converged, gaps, retained, n: int, total_variance: float) -> pa.Table:
+    """spectrum.parquet: one row per eigenvalue, largest first.
+
+    ``share = eigenvalue / total_variance`` (the trace); ``std_error =
+    eigenvalue * sqrt(2 / n)``, the large-sample standard error of a sample
+    eigenvalue for independent rows (North, Bell, Cahalan & Moeng 1982,
+    Mon. Wea. Rev. 110).
+    """
+    values = np.asarray(values, dtype=float)
+    share = values / total_variance if total_variance > 0 else np.full(values.size, np.nan)
+    return pa.table({
+        "component": component_names(values.size),
+        "eigenvalue": values,
+        "share": share,
+        "cumulative_share": np.cumsum(share),
+        "residual": np.asarray(residuals, dtype=float),
+        "std_error": values * np.sqrt(2.0 / n),
+        "converged": np.asarray(converged, dtype=bool),
+        "gap": np.asarray(gaps, dtype=float),
+        "retained": np.asarray(retained, dtype=bool),
+    })
+
+
 def build_tables(plan, m, res, vectors, std, scale_used, total_variance) -> dict[str, pa.Table]:
-    """components.parquet, loadings.parquet and features.parquet as Arrow tables."""
+    """spectrum.parquet, loadings.parquet and features.parquet as Arrow tables."""
     k = vectors.shape[1]
     names = component_names(k)
-    values = res.values
-    n = m.total  # weighted rows: the sum of the (frequency) weights
-    ratio = values / total_variance if total_variance > 0 else np.full(k, np.nan)
-    components = pa.table({
-        "component": names,
-        "explained_variance": values,
-        "explained_variance_ratio": ratio,
-        "cumulative_ratio": np.cumsum(ratio),
-        "singular_value": np.sqrt(np.maximum(values, 0.0) * (n - 1)),
-        "residual_norm": res.residual_norms,
-        "std_error": values * np.sqrt(2.0 / n),
-        "converged": res.converged,
-        "gap": res.gaps,
-    })
+    spectrum = spectrum_table(res.values, res.residual_norms, res.converged, res.gaps, np.ones(k, bool),
+                              m.total, total_variance)  # weighted rows: the sum of the (frequency) weights
     loadings = pa.table({"feature": list(plan.features), **{nm: vectors[:, j] for j, nm in enumerate(names)}})
     features = pa.table({
         "feature": list(plan.features),
@@ -50,7 +61,7 @@ def build_tables(plan, m, res, vectors, std, scale_used, total_variance) -> dict
         "missing": m.missing.astype(np.int64),
         "weight": np.ones(plan.n_features) if plan.feature_weights is None else np.asarray(plan.feature_weights),
     })
-    return {"components.parquet": components, "loadings.parquet": loadings, "features.parquet": features}
+    return {"spectrum.parquet": spectrum, "loadings.parquet": loadings, "features.parquet": features}
 
 
 def package_versions(own: str) -> dict:
@@ -78,11 +89,11 @@ def manifest_for(p, m, res, choice, total_variance, passes, cache, info, timings
         "config": config_to_dict(p.cfg),
         "config_source": p.cfg.source,
         "inputs": p.plan.inputs_record(),
-        "n_rows_read": int(m.rows_seen),
-        "n_samples": int(m.n),
+        "rows_read": int(m.rows_seen),
+        "rows": int(m.n),
         "weights": weights_record(p.plan, m, p.cfg.model.feature_weights),
-        "n_features": int(p.plan.n_features),
-        "n_components": int(res.values.size),
+        "features": int(p.plan.n_features),
+        "components": int(res.values.size),
         "total_variance": float(total_variance),
         "method": choice.method,
         "method_reason": choice.reason,

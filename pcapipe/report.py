@@ -16,6 +16,7 @@ from __future__ import annotations
 import base64
 import glob
 import html
+import json
 import logging
 import math
 import os
@@ -27,6 +28,7 @@ import pyarrow.parquet as pq
 
 from .config import format_size
 from .errors import InputError, OutputError
+from .formats import SPECTRUM_HEADERS, spectrum_cells
 from .figures import (BAR_COMPONENTS, LEVELS, fig_convergence, fig_cumulative, fig_heatmap, fig_loadings,
                       fig_scatter, fig_scree, png_bytes)
 from .writer import partial_dir_for, write_json_atomic
@@ -91,11 +93,11 @@ def summary_rows(manifest: dict) -> list[tuple[str, str]]:
     compute = m.get("compute", {})
     return [
         ("inputs", files),
-        ("rows (n)", f"{m.get('n_samples')} used of {m.get('n_rows_read', m.get('n_samples'))} read"
+        ("rows (n)", f"{m.get('rows')} used of {m.get('rows_read', m.get('rows'))} read"
                      f" (missing values: {inp.get('missing', 'fail')})"),
-        ("features (d)", f"{m.get('n_features')}" + (f" from vector column {inp['vector_column']!r}"
+        ("features (d)", f"{m.get('features')}" + (f" from vector column {inp['vector_column']!r}"
                                                        if inp.get("vector_column") else "")),
-        ("components (k)", f"{m.get('n_components')} (asked for {model.get('components')})"),
+        ("components (k)", f"{m.get('components')} (asked for {model.get('components')})"),
         ("preprocessing", prep),
         ("weights", weights_text(m.get("weights"))),
         ("total variance", f"{m.get('total_variance', float('nan')):.6g}"),
@@ -142,9 +144,10 @@ def report_figures(directory: str, manifest: dict, color_by: str | None = None):
 
     _check_color_by(manifest, color_by)
     res = Result(directory, manifest)
-    comp, load = res.components, res.loadings
+    spec, load = res.spectrum, res.loadings
+    comp = spec[spec["retained"]]
     scaled = bool(manifest["config"]["model"].get("scale"))
-    d, k = int(manifest["n_features"]), len(comp)
+    d, k = int(manifest["features"]), len(comp)
     figs, notes = {}, []
     figs["scree"] = (fig_scree(comp, float(manifest["total_variance"]), scaled, d),
                      "Eigenvalues with std-error bars (North et al. 1982); dashed: broken-stick expectation "
@@ -163,7 +166,7 @@ def report_figures(directory: str, manifest: dict, color_by: str | None = None):
         notes.append("no scores scatter: the run has a single component")
     else:
         sample = sample_scores(directory, ["PC1", "PC2", *([color_by] if color_by else [])])
-        figs["scatter"] = (fig_scatter(sample, comp["explained_variance_ratio"].to_numpy()[:2], color_by),
+        figs["scatter"] = (fig_scatter(sample, comp["share"].to_numpy()[:2], color_by),
                            f"PC1 against PC2 for {len(sample)} rows from a spread of row groups "
                            f"(of {manifest['scores'].get('rows')} scored rows).")
     history = manifest.get("solver", {}).get("residual_history") or []
@@ -193,14 +196,11 @@ def _png_size(data: bytes) -> tuple[int, int]:
     return int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
 
 
-def _spectrum_table(components: pd.DataFrame) -> str:
-    head = "".join(f"<th>{h}</th>" for h in ("component", "variance", "ratio", "cumulative", "residual",
-                                              "std error", "converged"))
+def _spectrum_table(spectrum: pd.DataFrame) -> str:
+    head = "".join(f"<th>{h}</th>" for h in ("component", *SPECTRUM_HEADERS, "converged"))
     rows = []
-    for name, r in components.iterrows():
+    for (name, r), cells in zip(spectrum.iterrows(), spectrum_cells(spectrum)):
         ok = bool(r.get("converged", True))
-        cells = (f"{r['explained_variance']:.6g}", f"{r['explained_variance_ratio']:.2%}",
-                 f"{r['cumulative_ratio']:.2%}", f"{r['residual_norm']:.2e}", f"{r['std_error']:.4g}")
         rows.append(f"<tr><th>{html.escape(str(name))}</th>" + "".join(f'<td class="num">{c}</td>' for c in cells)
                     + ("<td>yes</td>" if ok else '<td class="bad">no</td>') + "</tr>")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
@@ -220,8 +220,8 @@ def _page(title: str, manifest: dict, components: pd.DataFrame, images, notes) -
     return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8"><title>pcapipe report: '
             f"{html.escape(title)}</title><style>{_CSS}</style></head><body>"
             f"<h1>pcapipe report: {html.escape(title)}</h1>"
-            f"<p>{manifest.get('n_samples')} rows \u00d7 {manifest.get('n_features')} features, "
-            f"{manifest.get('n_components')} components, method {html.escape(str(manifest.get('method')))}</p>"
+            f"<p>{manifest.get('rows')} rows \u00d7 {manifest.get('features')} features, "
+            f"{manifest.get('components')} components, method {html.escape(str(manifest.get('method')))}</p>"
             f"{state}<h2>Spectrum</h2>{_spectrum_table(components)}<h2>Figures</h2>{''.join(figures)}"
             + (f'<ul class="notes">{note_list}</ul>' if notes else "")
             + f"<h2>Run</h2><table>{summary}</table></body></html>\n")
@@ -277,7 +277,7 @@ def build_report(directory: str, manifest: dict, color_by: str | None = None) ->
     images = {name: (png_bytes(fig), caption) for name, (fig, caption) in figs.items()}
     for name, (data, _) in images.items():
         _write_file(directory, f"{name}.png", data)
-    page = _page(_title(directory), manifest, Result(directory, manifest).components, images, notes)
+    page = _page(_title(directory), manifest, Result(directory, manifest).spectrum, images, notes)
     _write_file(directory, "report.html", page.encode("utf-8"))
     log.debug("wrote the report: %s", os.path.join(directory, "report.html"))
     return {"requested": True, "written": True, "files": ["report.html", *(f"{n}.png" for n in images)],
@@ -302,7 +302,10 @@ def write_report(result, color_by: str | None = None) -> str:
     entry = build_report(result.directory, result.manifest, color_by)
     if not entry["written"]:
         raise OutputError(f"{result.directory}: no report written; {entry['note']}")
-    manifest = dict(result.manifest, report=entry)
-    write_json_atomic(os.path.join(result.directory, "manifest.json"), manifest)
-    result.manifest = manifest
+    path = os.path.join(result.directory, "manifest.json")
+    # the file as written (a previous format version keeps its own key names), plus the report
+    with open(path) as f:
+        on_disk = json.load(f)
+    write_json_atomic(path, dict(on_disk, report=entry))
+    result.manifest = dict(result.manifest, report=entry)
     return os.path.join(result.directory, "report.html")

@@ -22,16 +22,28 @@ import pyarrow.parquet as pq
 from .errors import RunDirectoryError
 from .writer import FORMAT_VERSION
 
-__all__ = ["Result", "load"]
+__all__ = ["Result", "load", "READABLE_VERSIONS"]
 
-_FILES = ("manifest.json", "components.parquet", "loadings.parquet", "features.parquet")
-_SUMMARY = ["explained_variance", "explained_variance_ratio", "cumulative_ratio", "residual_norm", "std_error"]
+_TABLES = ("loadings.parquet", "features.parquet")
+_SPECTRUM_FILE = {1: "components.parquet", 2: "spectrum.parquet"}  # per format version
+READABLE_VERSIONS = tuple(sorted(_SPECTRUM_FILE))
+assert FORMAT_VERSION in READABLE_VERSIONS
+# Format version 1 (the first release) used other names for the same things.
+_V1_MANIFEST = {"n_samples": "rows", "n_features": "features", "n_components": "components",
+                "n_rows_read": "rows_read"}
+_V1_SPECTRUM = {"explained_variance": "eigenvalue", "explained_variance_ratio": "share",
+                "cumulative_ratio": "cumulative_share", "residual_norm": "residual"}
+_SUMMARY = ["eigenvalue", "share", "cumulative_share", "residual", "std_error", "retained"]
 _REPR_ROWS = 5  # components listed in the one-line repr
 _HTML_ROWS = 20  # components shown in the notebook table
 
 
 def load(directory) -> "Result":
     """Open the run directory ``directory``.
+
+    Directories of the previous format version (1) are read too: their
+    manifest keys and spectrum columns are given the current names in memory
+    (the files are not changed).
 
     Raises
     ------
@@ -44,23 +56,33 @@ def load(directory) -> "Result":
         hint = " (an unfinished run is in the .incomplete sibling; finish it with --resume)" \
             if os.path.isdir(directory + ".incomplete") else ""
         raise RunDirectoryError(f"{directory}: no such run directory{hint}")
-    for name in _FILES:
-        if not os.path.isfile(os.path.join(directory, name)):
-            raise RunDirectoryError(f"{directory}: {name} is missing; this is not a complete run directory")
+    if not os.path.isfile(os.path.join(directory, "manifest.json")):
+        raise RunDirectoryError(f"{directory}: manifest.json is missing; this is not a complete run directory")
     try:
         with open(os.path.join(directory, "manifest.json")) as f:
             manifest = json.load(f)
     except (OSError, json.JSONDecodeError) as e:
         raise RunDirectoryError(f"{directory}/manifest.json: not valid JSON ({e})") from e
     version = manifest.get("format_version") if isinstance(manifest, dict) else None
-    if version != FORMAT_VERSION:
+    if version not in READABLE_VERSIONS or isinstance(version, bool):
         raise RunDirectoryError(
             f"{directory}/manifest.json: format_version {version!r} is not one this pcapipe reads "
-            f"({FORMAT_VERSION}); open it with the pcapipe version that wrote it"
+            f"({', '.join(map(str, READABLE_VERSIONS))}); open it with the pcapipe version that wrote it, "
+            "or run the job again"
         )
-    result = Result(directory, manifest)
+    for name in (_SPECTRUM_FILE[version], *_TABLES):
+        if not os.path.isfile(os.path.join(directory, name)):
+            raise RunDirectoryError(f"{directory}: {name} is missing; this is not a complete run directory")
+    result = Result(directory, _upgrade_manifest(manifest))
     result._validate()
     return result
+
+
+def _upgrade_manifest(manifest: dict) -> dict:
+    """The manifest with the current key names (a version-1 manifest renamed; others unchanged)."""
+    if manifest.get("format_version") != 1:
+        return manifest
+    return {_V1_MANIFEST.get(key, key): value for key, value in manifest.items()}
 
 
 def _read(directory: str, name: str) -> pd.DataFrame:
@@ -85,9 +107,19 @@ class Result:
 
     # -- tables --------------------------------------------------------------
     @cached_property
-    def components(self) -> pd.DataFrame:
-        """One row per component (index PC1..PCk): variance, ratios, residuals, std errors."""
-        return _read(self.directory, "components.parquet").set_index("component")
+    def spectrum(self) -> pd.DataFrame:
+        """One row per eigenvalue the method determined (index PC1...), largest first.
+
+        Columns: eigenvalue, share (of the total variance), cumulative_share,
+        residual ``||C v - theta v||``, std_error, converged, gap, retained
+        (True on the first k, the components with loadings and scores).
+        """
+        version = self.manifest.get("format_version", FORMAT_VERSION)
+        table = _read(self.directory, _SPECTRUM_FILE.get(version, _SPECTRUM_FILE[FORMAT_VERSION]))
+        if version == 1:
+            table = table.rename(columns=_V1_SPECTRUM).drop(columns=["singular_value"], errors="ignore")
+            table["retained"] = True  # version 1 stored only the retained components
+        return table.set_index("component")
 
     @cached_property
     def loadings(self) -> pd.DataFrame:
@@ -99,32 +131,28 @@ class Result:
         """Per feature: mean, std, scale_used, missing count."""
         return _read(self.directory, "features.parquet").set_index("feature")
 
-    @property
-    def explained_variance(self) -> pd.Series:
-        return self.components["explained_variance"]
-
-    @property
-    def explained_variance_ratio(self) -> pd.Series:
-        return self.components["explained_variance_ratio"]
-
-    @property
-    def n_components(self) -> int:
-        return int(self.manifest["n_components"])
+    def _retained(self) -> pd.DataFrame:
+        return self.spectrum[self.spectrum["retained"]]
 
     def _validate(self) -> None:
         m = self.manifest
         try:
-            k, d = int(m["n_components"]), int(m["n_features"])
+            k, d = int(m["components"]), int(m["features"])
         except (KeyError, TypeError, ValueError) as e:
-            raise RunDirectoryError(f"{self.directory}/manifest.json: lacks n_components/n_features") from e
-        names = [f"PC{i + 1}" for i in range(k)]
+            raise RunDirectoryError(f"{self.directory}/manifest.json: lacks components/features") from e
+        spec = self.spectrum
+        names = [f"PC{i + 1}" for i in range(len(spec))]
+        retained = spec["retained"].to_numpy(dtype=bool) if "retained" in spec else np.zeros(len(spec), bool)
         checks = [
-            ("components.parquet", self.components.shape[0] == k and list(self.components.index) == names),
-            ("loadings.parquet", self.loadings.shape == (d, k) and list(self.loadings.columns) == names),
+            ("spectrum", k <= len(spec) <= d and list(spec.index) == names
+             and retained[:k].all() and not retained[k:].any()),
+            ("loadings.parquet", self.loadings.shape == (d, k) and list(self.loadings.columns) == names[:k]),
             ("features.parquet", self.features.shape[0] == d and list(self.features.index) == list(self.loadings.index)),
         ]
         for name, ok in checks:
             if not ok:
+                if name == "spectrum":
+                    name = _SPECTRUM_FILE.get(m.get("format_version"), _SPECTRUM_FILE[FORMAT_VERSION])
                 raise RunDirectoryError(
                     f"{self.directory}/{name}: does not match the manifest ({k} components, {d} features); "
                     "the run directory was edited or truncated, run the job again"
@@ -194,14 +222,14 @@ class Result:
         """
         m, f = self.manifest, self.features
         v = self.loadings.to_numpy()
-        lam = self.explained_variance.to_numpy()
+        lam = self._retained()["eigenvalue"].to_numpy()
         # the analysed feature is x * factor: 1 / scale_used, times the feature weight (README "Weights")
         factor = (f["weight"].to_numpy() if "weight" in f else 1.0) / f["scale_used"].to_numpy()
         sd = f["std"].to_numpy() * factor  # std of the analysed feature
         cov = v * lam
         var_s = lam.copy()
         if not m["config"]["model"].get("center", True):
-            n = float((m.get("weights") or {}).get("sum") or m["n_samples"])
+            n = float((m.get("weights") or {}).get("sum") or m["rows"])
             mu = f["mean"].to_numpy() * factor
             proj = mu @ v
             cov = cov - (n / (n - 1)) * np.outer(mu, proj)
@@ -213,38 +241,38 @@ class Result:
 
     # -- display -------------------------------------------------------------
     def summary(self) -> pd.DataFrame:
-        """The spectrum: variance, ratio, cumulative ratio, residual and std error per component."""
-        return self.components[_SUMMARY]
+        """The spectrum: eigenvalue, share, cumulative share, residual, std error and retained flag."""
+        return self.spectrum[_SUMMARY]
 
     def _headline(self) -> str:
         m = self.manifest
         kind = "correlation" if m["config"]["model"].get("scale") else "covariance"
         state = "converged" if m["converged"] else "NOT all converged"
-        return (f"{m['n_samples']} rows x {m['n_features']} features, {m['n_components']} components "
+        return (f"{m['rows']} rows x {m['features']} features, {m['components']} components retained "
                 f"({kind} PCA, {m['method']}, {state})")
 
     def __repr__(self) -> str:
-        c = self.components
+        c = self._retained()
         shown = c.head(_REPR_ROWS)
-        spectrum = ", ".join(f"{name} {r:.1%}" for name, r in shown["explained_variance_ratio"].items())
+        listed = ", ".join(f"{name} {r:.1%}" for name, r in shown["share"].items())
         if len(c) > _REPR_ROWS:
-            spectrum += f", ... ({len(c) - _REPR_ROWS} more)"
-        total = c["cumulative_ratio"].iloc[-1] if len(c) else float("nan")
+            listed += f", ... ({len(c) - _REPR_ROWS} more)"
+        total = c["cumulative_share"].iloc[-1] if len(c) else float("nan")
         return (f"<pcapipe.Result {self.directory!r}: {self._headline()}; "
-                f"variance explained {spectrum}; total {total:.1%}>")
+                f"variance explained {listed}; total {total:.1%}>")
 
     def _repr_html_(self) -> str:
-        """A spectrum table for Jupyter: the headline and one row per component (at most 20)."""
+        """A spectrum table for Jupyter: the headline and one row per eigenvalue (at most 20)."""
+        from .formats import spectrum_cells
+
         c = self.summary().head(_HTML_ROWS)
-        head = "".join(f"<th>{html.escape(n)}</th>" for n in ("component", "variance", "ratio", "cumulative",
-                                                              "residual", "std error"))
+        head = "".join(f"<th>{html.escape(n)}</th>" for n in ("component", "eigenvalue", "share", "cumulative",
+                                                              "residual", "std error", "retained"))
         rows = []
-        for name, r in c.iterrows():
-            cells = (f"{r.iloc[0]:.6g}", f"{r.iloc[1]:.2%}", f"{r.iloc[2]:.2%}", f"{r.iloc[3]:.2e}",
-                     f"{r.iloc[4]:.4g}")
+        for name, cells in zip(c.index, spectrum_cells(c)):
             rows.append(f"<tr><th>{html.escape(str(name))}</th>" + "".join(f"<td>{x}</td>" for x in cells) + "</tr>")
-        more = len(self.components) - len(c)
-        tail = f"<p>... {more} more components: see <code>.components</code></p>" if more > 0 else ""
+        more = len(self.spectrum) - len(c)
+        tail = f"<p>... {more} more eigenvalues: see <code>.spectrum</code></p>" if more > 0 else ""
         return (f"<div class=\"pcapipe-result\"><p><b>pcapipe.Result</b> <code>{html.escape(self.directory)}"
                 f"</code><br>{html.escape(self._headline())}</p><table><thead><tr>{head}</tr></thead><tbody>"
                 + "".join(rows) + f"</tbody></table>{tail}</div>")

@@ -42,7 +42,7 @@ from typing import Callable
 
 import numpy as np
 
-from .errors import ConvergenceWarning
+from .errors import NotConvergedWarning
 
 __all__ = ["SolverResult", "SolverState", "BlockPowerSolver", "solve"]
 
@@ -307,7 +307,7 @@ def solve(matmat: Callable, n_features: int, k: int, *, tolerance: float, max_it
     """Run :class:`BlockPowerSolver` to convergence or to the iteration limit.
 
     ``callback(solver)`` is called after every operator application (the
-    engine checkpoints there).  Emits one :class:`ConvergenceWarning` naming
+    engine checkpoints there).  Emits one :class:`NotConvergedWarning` naming
     the components that did not reach the tolerance, with the residual reached
     and the gap to their neighbours.
     """
@@ -333,7 +333,7 @@ def solve(matmat: Callable, n_features: int, k: int, *, tolerance: float, max_it
             f"{bad.size} of {k} components did not reach tolerance {tolerance:g} in "
             f"{res.matvecs} operator applications: {detail}; a relative gap this small needs more "
             "iterations (model.max_iterations) or a looser model.tolerance",
-            ConvergenceWarning,
+            NotConvergedWarning,
             stacklevel=2,
         )
     return res

@@ -9,11 +9,10 @@ import numpy as np
 from .compute import _cores, physical_memory
 from .config import format_size, parse_memory
 from .errors import InputError
+from .formats import SPECTRUM_HEADERS, spectrum_cells
 from .operators import choose_method
 
 __all__ = ["check_report", "describe_text", "describe_json", "top_loadings", "spectrum_table"]
-
-
 
 
 def _local_memory(cfg) -> tuple[int, int, str]:
@@ -91,40 +90,36 @@ def describe_json(res, top: int) -> dict:
     """What ``pcapipe describe --json`` prints: the spectrum and the top loadings, NaN as null."""
     m = res.manifest
     model = m["config"]["model"]
-    comp = res.components.reset_index()
+    spec = res.spectrum.reset_index()
     records = [{k: _finite(v.item() if hasattr(v, "item") else v) for k, v in row.items()}
-               for row in comp.to_dict(orient="records")]
+               for row in spec.to_dict(orient="records")]
     return {
         "directory": res.directory,
-        "n_samples": m["n_samples"],
-        "n_features": m["n_features"],
-        "n_components": m["n_components"],
+        "rows": m["rows"],
+        "features": m["features"],
+        "components": m["components"],
         "center": bool(model.get("center", True)),
         "scale": bool(model.get("scale", False)),
         "method": m["method"],
         "converged": m["converged"],
         "tolerance": model.get("tolerance"),
         "total_variance": _finite(m["total_variance"]),
-        "components": records,
+        "spectrum": records,
         "top_loadings": {pc: [{"feature": f, "loading": _finite(v), "correlation": _finite(r)} for f, v, r in rows]
                          for pc, rows in top_loadings(res, top).items()},
     }
 
 
-_TABLE = (("component", 10, None), ("variance", 14, "{:.6g}"), ("ratio", 9, "{:.4f}"),
-          ("cumulative", 12, "{:.4f}"), ("residual", 11, "{:.2e}"), ("std_error", 12, "{:.4g}"))
-_COLUMNS = ("explained_variance", "explained_variance_ratio", "cumulative_ratio", "residual_norm", "std_error")
+_WIDTHS = (12, 10, 12, 11, 11, 10)  # right-aligned columns after the component name
 
 
 def spectrum_table(res) -> str:
-    """The spectrum as aligned text: one row per component, ``*`` after a component that did not converge."""
-    lines = ["".join(f"{h:<{w}}" if fmt is None else f"{h:>{w}}" for h, w, fmt in _TABLE)]
-    converged = res.components["converged"] if "converged" in res.components else None
-    for name, r in res.components[list(_COLUMNS)].iterrows():
-        cells = [f"{name:<{_TABLE[0][1]}}"]
-        cells += [f"{fmt.format(v):>{w}}" for (_, w, fmt), v in zip(_TABLE[1:], r.to_numpy())]
-        flag = "" if converged is None or bool(converged[name]) else " *"
-        lines.append("".join(cells) + flag)
+    """The spectrum as aligned text: one row per eigenvalue, ``*`` after one that did not converge."""
+    spec = res.spectrum
+    lines = [f"{'component':<10}" + "".join(f"{h:>{w}}" for h, w in zip(SPECTRUM_HEADERS, _WIDTHS))]
+    for (name, r), cells in zip(spec.iterrows(), spectrum_cells(spec)):
+        flag = "" if bool(r.get("converged", True)) else " *"
+        lines.append(f"{name:<10}" + "".join(f"{c:>{w}}" for c, w in zip(cells, _WIDTHS)) + flag)
     return "\n".join(lines)
 
 
@@ -146,12 +141,11 @@ def describe_text(res, top: int) -> str:
     kind = "correlation PCA (scaled)" if model.get("scale") else "covariance PCA"
     if not model.get("center", True):
         kind += ", not centred"
-    bad = [str(pc) for pc, ok in res.components["converged"].items() if not ok] \
-        if "converged" in res.components else []
+    bad = [str(pc) for pc, ok in res.spectrum["converged"].items() if not ok]
     state = "converged" if m["converged"] else f"NOT converged: {', '.join(bad) or 'see the manifest'}"
     parts = [
         res.directory,
-        f"{m['n_samples']} rows x {m['n_features']} features, {kind}, method {m['method']}, "
+        f"{m['rows']} rows x {m['features']} features, {kind}, method {m['method']}, "
         f"{m['passes_over_data']} pass(es) over the data, {state}",
         f"total variance {m['total_variance']:.6g}; residual = ||C v - theta v||, "
         f"tolerance {model.get('tolerance')} x the first eigenvalue",
@@ -161,6 +155,6 @@ def describe_text(res, top: int) -> str:
     if bad:
         parts.append("* did not reach the tolerance")
     if top:
-        parts += ["", f"top {min(top, m['n_features'])} loadings per component "
+        parts += ["", f"top {min(top, m['features'])} loadings per component "
                   "(correlation: of the feature with the component's scores)", _loadings_table(res, top)]
     return "\n".join(parts)

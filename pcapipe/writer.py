@@ -28,7 +28,7 @@ from .errors import OutputError
 
 __all__ = ["RunWriter", "FORMAT_VERSION", "MARKER", "write_json_atomic", "partial_dir_for", "is_pcapipe_run"]
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: spectrum.parquet and the manifest keys rows/features (issue 12)
 # Created first in every .incomplete sibling: proof that the directory is ours to delete.
 MARKER = ".pcapipe-incomplete"
 # Names a finished run holds, used to ask whether an input glob would find them.

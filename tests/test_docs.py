@@ -88,3 +88,26 @@ def test_ci_runs_the_readme_test_command():
     test_command = [line for line in block.splitlines() if line.strip()][1].strip()
     with open(os.path.join(ROOT, ".ci", "run")) as f:
         assert test_command in f.read()
+
+
+def test_run_directory_table_lists_the_spectrum_columns_written():
+    import numpy as np
+
+    from pcapipe.outputs import spectrum_table
+
+    row = re.search(r"^\| `spectrum\.parquet` \| (.*) \|$", _section(_readme(), "Run directory"), re.M)
+    assert row, "README's Run directory table has no spectrum.parquet row"
+    documented = re.findall(r"`([a-z_]+)`", row.group(1))
+    written = spectrum_table(np.array([2.0, 1.0]), np.zeros(2), np.ones(2, bool), np.ones(2), np.array([True, False]),
+                             10, 3.0).column_names
+    assert documented == written
+
+
+def test_readme_python_api_names_exist():
+    import pcapipe
+
+    block = re.search(r"## In a notebook\n\nAfter.*?```python\n(.*?)```", _readme(), re.S).group(1)
+    members = set(re.findall(r"\bres\.([a-z_]+)", block))
+    instance = {"manifest", "directory"}  # set in __init__
+    missing = {m for m in members if not hasattr(pcapipe.Result, m) and m not in instance}
+    assert members and not missing, f"README uses res.{', res.'.join(sorted(missing))}"

@@ -385,5 +385,5 @@ def test_drop_rows_leaves_enough(tmp_path):
     cfg = make_config(str(tmp_path / "data"), tmp_path / "out", input={"missing": "drop-rows"},
                       model={"components": 1}, output={"scores": False})
     res = pcapipe.run(cfg)
-    assert res.manifest["n_samples"] == 2
-    assert res.manifest["n_features"] == 3
+    assert res.manifest["rows"] == 2
+    assert res.manifest["features"] == 3

@@ -148,7 +148,7 @@ def test_empty_and_tree_merge_of_nothing():
 
 
 def _naive_variance(x):
-    """sum(x^2) - n mu^2: the formula DESIGN.md forbids, kept here to prove the test can fail."""
+    """sum(x^2) - n mu^2: the formula the README warns against (cancellation), kept here to prove the test can fail."""
     n = x.shape[0]
     mu = x.sum(axis=0) / n
     return ((x * x).sum(axis=0) - n * mu * mu) / (n - 1)

@@ -14,7 +14,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-from conftest import known_spectrum, make_config, write_parquet
+from conftest import known_spectrum, make_config, write_parquet, retained
 from scipy.linalg import subspace_angles
 from sklearn import datasets
 from sklearn.decomposition import PCA
@@ -71,7 +71,7 @@ def _assert_close_scores(ours, expected):
 
 
 def _assert_oriented(loadings: np.ndarray):
-    """DESIGN.md: each loading vector's entry of largest magnitude is positive."""
+    """README: each loading vector's entry of largest magnitude is positive."""
     idx = np.argmax(np.abs(loadings), axis=0)
     assert (loadings[idx, np.arange(loadings.shape[1])] > 0).all()
 
@@ -79,11 +79,11 @@ def _assert_oriented(loadings: np.ndarray):
 def _check_against(res, x64, c, k):
     """Eigenvalues, ratios, loadings and orientation against the matrix c of the data x64."""
     ref_values, ref_vectors = _numpy_pca(c, k)
-    ours = res.explained_variance.to_numpy()
+    ours = retained(res)
     loadings = res.loadings.to_numpy()
     assert loadings.shape == (x64.shape[1], k)
     np.testing.assert_allclose(ours, ref_values, rtol=VALUE_RTOL, atol=0)
-    np.testing.assert_allclose(res.explained_variance_ratio.to_numpy(), ref_values / np.trace(c),
+    np.testing.assert_allclose(retained(res, "share"), ref_values / np.trace(c),
                                rtol=VALUE_RTOL, atol=0)
     assert _max_angle(loadings, ref_vectors) <= ANGLE_MAX
     np.testing.assert_allclose(loadings.T @ loadings, np.eye(k), rtol=0, atol=1e-12)
@@ -112,7 +112,7 @@ def test_known_spectrum_matches_numpy(tmp_path, rng, method, vector, dtype):
                model={"components": k, "method": method, "oversample": 2})
     x64 = x.astype(dtype).astype(np.float64)  # the values pcapipe reads
     assert res.manifest["method"] == method
-    assert res.manifest["n_samples"] == n
+    assert res.manifest["rows"] == n
     _check_against(res, x64, np.cov(x64, rowvar=False, ddof=1), k)
     np.testing.assert_allclose(res.features["mean"].to_numpy(), x64.mean(axis=0), rtol=1e-13)
     _assert_close_scores(_scores(res), (x64 - x64.mean(axis=0)) @ res.loadings.to_numpy())
@@ -142,9 +142,9 @@ def test_matches_scikit_learn_pca(tmp_path, method, name, loader, k):
     # their last component (Davis & Kahan 1970), so ask for 1e-13 to compare at 1e-6
     res = _fit(tmp_path, x, name, model={"components": k, "method": method, "tolerance": 1e-13})
     ref = PCA(n_components=k, svd_solver="full").fit(x)  # scikit-learn, exact SVD
-    np.testing.assert_allclose(res.explained_variance.to_numpy(), ref.explained_variance_, rtol=VALUE_RTOL)
+    np.testing.assert_allclose(retained(res), ref.explained_variance_, rtol=VALUE_RTOL)
     # scikit-learn divides by the total variance of all components, i.e. the trace, as we do
-    np.testing.assert_allclose(res.explained_variance_ratio.to_numpy(), ref.explained_variance_ratio_,
+    np.testing.assert_allclose(retained(res, "share"), ref.explained_variance_ratio_,
                                rtol=VALUE_RTOL)
     loadings = res.loadings.to_numpy()
     signs = np.sign(np.sum(loadings * ref.components_.T, axis=0))
@@ -160,7 +160,7 @@ def test_matches_scikit_learn_pca(tmp_path, method, name, loader, k):
 def test_iris_correlation_eigenvalues(tmp_path):
     x = datasets.load_iris().data  # UCI ML Iris data, Fisher 1936; sklearn.datasets.load_iris documentation
     res = _fit(tmp_path, x, "iris-corr", model={"components": 4, "scale": True})
-    ours = res.explained_variance.to_numpy()
+    ours = retained(res)
     # Eigenvalues of the iris correlation matrix, widely reproduced in textbooks and
     # tutorials: from memory, to 3 decimals.
     np.testing.assert_array_equal(np.round(ours, 3), [2.918, 0.914, 0.147, 0.021])
@@ -177,16 +177,14 @@ def test_scaled_is_correlation_and_denominator_is_n_minus_1(tmp_path, method):
     # eigvalsh's own error (~eps * lambda_1) stays far below 1e-9 * lambda_min
     x = rng.standard_normal((n, d)) * [1.0, 3.0, 0.5, 2.0, 1.5, 4.0] + np.arange(d)
     cov = _fit(tmp_path, x, "cov", model={"components": d, "method": method})
-    ev = cov.explained_variance.to_numpy()
+    ev = retained(cov)
     ddof1 = np.linalg.eigvalsh(np.cov(x, rowvar=False, ddof=1))[::-1]  # numpy, n - 1
     ddof0 = np.linalg.eigvalsh(np.cov(x, rowvar=False, ddof=0))[::-1]  # numpy, n
     np.testing.assert_allclose(ev, ddof1, rtol=VALUE_RTOL)
     assert not np.allclose(ev, ddof0, rtol=VALUE_RTOL * 1e3, atol=0)
-    comp = cov.components
-    # DESIGN.md conventions: singular_value = sqrt((n-1) * eigenvalue); std_error =
-    # eigenvalue * sqrt(2/n) (North, Bell, Cahalan & Moeng 1982, Mon. Wea. Rev. 110)
-    np.testing.assert_allclose(comp["singular_value"], np.sqrt((n - 1) * ddof1), rtol=1e-9)
-    np.testing.assert_allclose(comp["std_error"], ddof1 * np.sqrt(2.0 / n), rtol=1e-9)
+    # README conventions: std_error = eigenvalue * sqrt(2/n) (North, Bell, Cahalan &
+    # Moeng 1982, Mon. Wea. Rev. 110)
+    np.testing.assert_allclose(retained(cov, "std_error"), ddof1 * np.sqrt(2.0 / n), rtol=1e-9)
     np.testing.assert_allclose(cov.features["std"].to_numpy(), x.std(axis=0, ddof=1), rtol=1e-12)
 
     corr = _fit(tmp_path, x, "corr", model={"components": d, "method": method, "scale": True})
@@ -207,7 +205,7 @@ def test_large_mean_offset_keeps_relative_accuracy(tmp_path, method):
     # Computation"), and the covariance does not depend on the shift
     c = np.cov(x - x[0], rowvar=False)
     ref = np.linalg.eigvalsh(c)[::-1][:k]
-    np.testing.assert_allclose(res.explained_variance.to_numpy(), ref, rtol=1e-6)
+    np.testing.assert_allclose(retained(res), ref, rtol=1e-6)
     np.testing.assert_allclose(res.features["std"].to_numpy(), np.sqrt(np.diag(c)), rtol=1e-6)
     # the test can fail: the one-pass textbook formula sum(x x^T) - n mu mu^T does on these data
     mu = x.sum(axis=0) / n
@@ -234,7 +232,7 @@ def test_file_and_row_group_layout_does_not_change_the_answer(tmp_path, method):
     first = runs[0]
     s0 = _scores(first)
     for res in runs[1:]:
-        np.testing.assert_allclose(res.explained_variance.to_numpy(), first.explained_variance.to_numpy(),
+        np.testing.assert_allclose(retained(res), retained(first),
                                    rtol=1e-12, atol=0)
         np.testing.assert_allclose(res.loadings.to_numpy(), first.loadings.to_numpy(), rtol=0, atol=1e-12)
         np.testing.assert_allclose(_scores(res), s0, rtol=0, atol=1e-12 * np.abs(s0).max())
@@ -264,10 +262,10 @@ def test_components_fraction_is_smallest_k_reaching_it(tmp_path, method, fractio
     assert np.abs(cum - fraction).min() > 1e-6  # not a knife-edge case
     # oversample 2 makes the engine start from a small k and grow it
     res = _fit(tmp_path, x, "frac", model={"components": fraction, "method": method, "oversample": 2})
-    assert res.n_components == k_ref
+    assert res.manifest["components"] == k_ref
     assert k_ref > 4
-    np.testing.assert_allclose(res.explained_variance.to_numpy(), ref[:k_ref], rtol=VALUE_RTOL)
-    np.testing.assert_allclose(res.components["cumulative_ratio"].to_numpy(), cum[:k_ref], rtol=1e-9)
+    np.testing.assert_allclose(retained(res), ref[:k_ref], rtol=VALUE_RTOL)
+    np.testing.assert_allclose(retained(res, "cumulative_share"), cum[:k_ref], rtol=1e-9)
 
 
 def _write_with_holes(directory, x, holes, nulls, files=2):
@@ -311,14 +309,14 @@ def test_missing_values_match_cleaned_data(tmp_path, method, missing):
     if missing == "drop-rows":
         ok = ~bad.any(axis=1)
         clean = x[ok]
-        assert res.manifest["n_samples"] == ok.sum()
+        assert res.manifest["rows"] == ok.sum()
         _check_against(res, clean, np.cov(clean, rowvar=False), k)
         assert np.isnan(scores[~ok]).all()
         _assert_close_scores(scores[ok], (clean - clean.mean(axis=0)) @ loadings)
     else:
         col_mean = np.array([x[~bad[:, j], j].mean() for j in range(d)])  # mean of the present values
         clean = np.where(bad, col_mean, x)
-        assert res.manifest["n_samples"] == n
+        assert res.manifest["rows"] == n
         _check_against(res, clean, np.cov(clean, rowvar=False), k)
         np.testing.assert_allclose(res.features["mean"].to_numpy(), col_mean, rtol=1e-12)
         _assert_close_scores(scores, (clean - clean.mean(axis=0)) @ loadings)

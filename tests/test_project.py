@@ -65,7 +65,7 @@ def test_project_reproduces_the_stored_scores(tmp_path, rng, center, scale, vect
 
 
 def test_project_applies_the_documented_preprocessing(tmp_path, rng):
-    """New rows: ((x - mean) / std) @ loadings, from features.parquet and loadings.parquet (DESIGN.md)."""
+    """New rows: ((x - mean) / std) @ loadings, from features.parquet and loadings.parquet (README, "Run directory")."""
     res, _ = _run(tmp_path, _data(rng), scale=True)
     new = _data(np.random.default_rng(7), n=50)
     frame = pd.DataFrame(new, columns=[f"f{j}" for j in range(5)], index=np.arange(100, 150))

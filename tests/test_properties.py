@@ -21,7 +21,7 @@ def _chunked_data(draw):
     d = draw(st.integers(1, 12))
     seed = draw(st.integers(0, 2**32 - 1))
     log_scale = draw(st.integers(-3, 6))
-    # offsets up to 1e8 times the spread (the cancellation DESIGN.md guards against)
+    # offsets up to 1e8 times the spread (the cancellation the moments pass guards against)
     log_offset = draw(st.integers(-3, log_scale + 8))
     sign = draw(st.sampled_from([-1.0, 1.0]))
     cuts = draw(st.lists(st.integers(1, n - 1), unique=True, max_size=min(12, n - 1)))

@@ -23,6 +23,7 @@ import pcapipe
 from conftest import known_spectrum, make_config, run_cli, write_parquet
 from pcapipe.errors import InputError, OutputError
 from pcapipe.figures import LEVELS, broken_stick, fig_convergence, history_array
+from pcapipe.formats import sig
 from pcapipe.report import (INSTALL_NOTE, SAMPLE_ROWS, build_report, report_figures, sample_scores,
                             summary_rows, write_report)
 
@@ -87,14 +88,14 @@ def test_broken_stick_shares(p, want):
 def test_scree_has_eigenvalues_error_bars_broken_stick_and_kaiser(small, figures):
     fig, _ = figures["scree"]
     ax = fig.axes[0]
-    comp = small.components
+    comp = small.spectrum[small.spectrum.retained]
     bars = ax.containers[0]
     data_line, _, (segments,) = bars.lines[0], bars.lines[1], bars.lines[2]
-    np.testing.assert_allclose(data_line.get_ydata(), comp["explained_variance"], rtol=1e-15)
+    np.testing.assert_allclose(data_line.get_ydata(), comp["eigenvalue"], rtol=1e-15)
     half = np.array([abs(s[1, 1] - s[0, 1]) / 2 for s in segments.get_segments()])
     np.testing.assert_allclose(half, comp["std_error"], rtol=1e-12)
     stick = next(line for line in ax.lines if line.get_gid() == "broken_stick")
-    p, total = small.manifest["n_features"], small.manifest["total_variance"]
+    p, total = small.manifest["features"], small.manifest["total_variance"]
     want = [sum(1 / j for j in range(i, p + 1)) / p * total for i in range(1, len(comp) + 1)]
     np.testing.assert_allclose(stick.get_ydata(), want, rtol=1e-12)
     kaiser = next(line for line in ax.lines if line.get_gid() == "kaiser")
@@ -109,16 +110,16 @@ def test_scree_of_a_covariance_pca_has_no_kaiser_line(wide):
 # -- cumulative --------------------------------------------------------------------------
 def test_cumulative_variance_with_levels(small, figures):
     ax = figures["cumulative"][0].axes[0]
-    comp = small.components
+    comp = small.spectrum[small.spectrum.retained]
     line = next(line for line in ax.lines if line.get_gid() == "cumulative")
-    np.testing.assert_allclose(line.get_ydata(), comp["cumulative_ratio"], rtol=1e-15)
-    np.testing.assert_allclose([b.get_height() for b in ax.containers[0]], comp["explained_variance_ratio"],
+    np.testing.assert_allclose(line.get_ydata(), comp["cumulative_share"], rtol=1e-15)
+    np.testing.assert_allclose([b.get_height() for b in ax.containers[0]], comp["share"],
                                rtol=1e-15)
     legend = [t.get_text() for t in ax.get_legend().get_texts()]
     for level in LEVELS:
         mark = next(line for line in ax.lines if line.get_gid() == f"level_{level:g}")
         assert list(mark.get_ydata()) == [level, level]
-        hit = np.flatnonzero(comp["cumulative_ratio"].to_numpy() >= level)
+        hit = np.flatnonzero(comp["cumulative_share"].to_numpy() >= level)
         where = f"reached at PC{hit[0] + 1}" if hit.size else "not reached by PC4"
         assert f"{level:.0%} ({where})" in legend
 
@@ -168,7 +169,7 @@ def test_scatter_plots_the_sample(small, figures):
     offsets = ax.collections[0].get_offsets()
     sample = sample_scores(small.directory, ["PC1", "PC2"])
     np.testing.assert_array_equal(np.asarray(offsets), sample[["PC1", "PC2"]].to_numpy())
-    ratio = small.explained_variance_ratio
+    ratio = small.spectrum["share"]
     assert ax.get_xlabel() == f"PC1 ({ratio['PC1']:.1%} of variance)"
     assert f"for {len(sample)} rows" in caption
 
@@ -272,8 +273,8 @@ def test_report_html_is_self_contained(built):
     for name, data in images:
         with open(os.path.join(res.directory, f"{name}.png"), "rb") as f:
             assert base64.b64decode(data) == f.read()
-    for pc, v in res.explained_variance.items():
-        assert f"<th>{pc}</th><td class=\"num\">{v:.6g}</td>" in page
+    for pc, v in res.spectrum["eigenvalue"].items():
+        assert f"<th>{pc}</th><td class=\"num\">{sig(v, 4)}</td>" in page
     assert res.manifest["method_reason"] in page
 
 

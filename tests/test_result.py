@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 import pcapipe
-from conftest import known_spectrum, make_config, write_parquet
+from conftest import known_spectrum, make_config, write_parquet, retained
 from pcapipe.errors import RunDirectoryError
 
 # Column spreads and offsets far apart, so covariance and correlation PCA differ
@@ -55,12 +55,12 @@ def test_correlation_loadings_match_corrcoef_of_data_and_scores(tmp_path, rng, c
 def test_correlation_loadings_closed_forms(tmp_path, rng):
     x = _data(rng)
     corr = _run(tmp_path, x, name="corr", scale=True)
-    lam = corr.explained_variance.to_numpy()
+    lam = retained(corr)
     # correlation PCA: the standardised features have unit variance (Jolliffe 2002, sec. 2.3, from memory)
     np.testing.assert_allclose(corr.correlation_loadings.to_numpy(), corr.loadings.to_numpy() * np.sqrt(lam),
                                rtol=1e-12)
     cov = _run(tmp_path, x, name="cov", scale=False)
-    lam = cov.explained_variance.to_numpy()
+    lam = retained(cov)
     std = cov.features["std"].to_numpy()[:, None]
     np.testing.assert_allclose(cov.correlation_loadings.to_numpy(), cov.loadings.to_numpy() * np.sqrt(lam) / std,
                                rtol=1e-12)
@@ -122,11 +122,11 @@ def test_repr_is_one_short_line_with_the_spectrum(tmp_path, rng):
     text = repr(res)
     assert "\n" not in text and len(text) < 400
     assert "400 rows x 8 features" in text and "7 components" in text and "covariance PCA" in text
-    ratio = res.explained_variance_ratio
+    ratio = res.spectrum["share"]
     for pc in ("PC1", "PC5"):
         assert f"{pc} {ratio[pc]:.1%}" in text
     assert "PC6" not in text and "(2 more)" in text
-    assert f"total {res.components['cumulative_ratio'].iloc[-1]:.1%}" in text
+    assert f"total {retained(res, 'cumulative_share')[-1]:.1%}" in text
 
 
 def test_repr_html_table_matches_components_and_escapes_the_path(tmp_path, rng):
@@ -139,12 +139,13 @@ def test_repr_html_table_matches_components_and_escapes_the_path(tmp_path, rng):
     parser = _Cells()
     parser.feed(page)
     header, *rows = parser.rows
-    assert header == ["component", "variance", "ratio", "cumulative", "residual", "std error"]
-    assert [r[0] for r in rows] == list(res.components.index)
-    for r, (_, c) in zip(rows, res.components.iterrows()):
-        assert float(r[1]) == pytest.approx(c["explained_variance"], rel=1e-5)  # printed with 6 digits
-        assert float(r[2].rstrip("%")) / 100 == pytest.approx(c["explained_variance_ratio"], abs=5e-5)
-        assert float(r[3].rstrip("%")) / 100 == pytest.approx(c["cumulative_ratio"], abs=5e-5)
+    assert header == ["component", "eigenvalue", "share", "cumulative", "residual", "std error", "retained"]
+    assert [r[0] for r in rows] == list(res.spectrum.index)
+    for r, (_, c) in zip(rows, res.spectrum.iterrows()):
+        assert float(r[1]) == pytest.approx(c["eigenvalue"], rel=5e-4)  # 4 significant digits
+        assert float(r[2].rstrip("%")) / 100 == pytest.approx(c["share"], rel=5e-3)  # 3
+        assert float(r[3].rstrip("%")) / 100 == pytest.approx(c["cumulative_share"], rel=5e-4)  # 4
+        assert r[6] == ("yes" if c["retained"] else "")
 
 
 # -- load() keeps refusing damaged run directories ---------------------------------
@@ -156,13 +157,15 @@ def test_load_refuses_edited_or_unknown_run_directories(tmp_path, rng):
     with open(manifest) as f:
         m = json.load(f)
     with open(manifest, "w") as f:
-        json.dump({**m, "n_features": 7}, f)
+        json.dump({**m, "features": 7}, f)
     with pytest.raises(RunDirectoryError, match="loadings.parquet"):
         pcapipe.load(res.directory)
     with open(manifest, "w") as f:
         json.dump({**m, "format_version": 999}, f)
     with pytest.raises(RunDirectoryError, match="format_version 999"):
         pcapipe.load(res.directory)
+    with open(manifest, "w") as f:
+        json.dump(m, f)
     os.remove(os.path.join(res.directory, "features.parquet"))
     with pytest.raises(RunDirectoryError, match="features.parquet is missing"):
         pcapipe.load(res.directory)

@@ -12,11 +12,11 @@ import numpy as np
 import pytest
 from scipy.linalg import subspace_angles
 
-from pcapipe.errors import ConvergenceWarning
+from pcapipe.errors import NotConvergedWarning
 from pcapipe.solver import BlockPowerSolver, SolverResult, solve
 
 DEFAULT_DEPTH = inspect.signature(solve).parameters["depth"].default
-TOL = 1e-9  # the solver's default relative residual (DESIGN.md, model.tolerance)
+TOL = 1e-9  # the solver's default relative residual (README, model.tolerance)
 VALUE_RTOL = 1e-9  # required accuracy of eigenvalues (the assignment's bound)
 ANGLE_MAX = 1e-6  # required largest principal angle, radians (the assignment's bound)
 ORTHO_ATOL = 1e-12  # V^T V = I to working precision
@@ -152,10 +152,10 @@ CLUSTER_VALUES = np.r_[100.0, 50.0, 1.001, 1.0, np.linspace(0.9, 0.1, 196)]  # g
 )
 def test_near_degenerate_cluster_warns_once_and_keeps_separated_pairs(depth, max_iterations, oversample):
     c = _matrix(CLUSTER_VALUES, seed=0)
-    with pytest.warns(ConvergenceWarning) as record:
+    with pytest.warns(NotConvergedWarning) as record:
         res = _solve(c, 3, oversample=oversample, max_iterations=max_iterations,
                      depth=DEFAULT_DEPTH if depth is None else depth)
-    ours = [w for w in record if issubclass(w.category, ConvergenceWarning)]
+    ours = [w for w in record if issubclass(w.category, NotConvergedWarning)]
     assert len(ours) == 1
     message = str(ours[0].message)
     assert re.findall(r"\bPC(\d+)\b", message) == ["3"]
@@ -177,7 +177,7 @@ def test_any_iteration_limit_gives_distinct_orthonormal_pairs():
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             res = _solve(c, 3, oversample=0, max_iterations=limit)
-        n_warn = sum(issubclass(w.category, ConvergenceWarning) for w in caught)
+        n_warn = sum(issubclass(w.category, NotConvergedWarning) for w in caught)
         orth = np.abs(res.vectors.T @ res.vectors - np.eye(3)).max()
         ok = res.converged
         value_err = np.abs(res.values[ok] / ref_values[ok] - 1).max() if ok.any() else 0.0

@@ -16,7 +16,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import pcapipe
-from conftest import known_spectrum, make_config, write_parquet
+from conftest import known_spectrum, make_config, retained, write_parquet
 from pcapipe.checkpoint import Checkpoint
 from pcapipe.moments import batch_moments
 from pcapipe.weighted import reliability_factor
@@ -52,13 +52,13 @@ def test_integer_weights_equal_repeated_rows(tmp_path, rng, method):
     model = {"components": 3, "method": method, "tolerance": 1e-12}
     a = pcapipe.run(make_config(str(tmp_path / "w"), tmp_path / "a", input={"row_weight": "w"}, model=model))
     b = pcapipe.run(make_config(str(tmp_path / "rep"), tmp_path / "b", model=model))
-    scale = b.explained_variance.iloc[0]
-    np.testing.assert_allclose(a.explained_variance, b.explained_variance, rtol=0, atol=1e-12 * scale)
+    scale = retained(b)[0]
+    np.testing.assert_allclose(retained(a), retained(b), rtol=0, atol=1e-12 * scale)
     np.testing.assert_allclose(a.loadings, b.loadings, rtol=0, atol=1e-10)
     np.testing.assert_allclose(a.features["mean"], b.features["mean"], rtol=0, atol=1e-12 * np.abs(x).max())
     np.testing.assert_allclose(a.features["std"], b.features["std"], rtol=1e-12)
-    assert a.manifest["weights"]["sum"] == w.sum() == b.manifest["n_samples"]
-    assert a.manifest["n_samples"] == int((w > 0).sum())
+    assert a.manifest["weights"]["sum"] == w.sum() == b.manifest["rows"]
+    assert a.manifest["rows"] == int((w > 0).sum())
     # every row gets a score, weight 0 or not, with the same loadings and means
     s = _scores(a)
     assert s.shape == (x.shape[0], 3) and np.isfinite(s).all()
@@ -80,7 +80,7 @@ def test_real_weights_match_numpy(tmp_path, rng, method, scale):
         sd = np.sqrt(np.diag(cov))
         cov = cov / np.outer(sd, sd)
     vals, vecs = _eigh(cov, 3)
-    np.testing.assert_allclose(res.explained_variance, vals, rtol=1e-11)
+    np.testing.assert_allclose(retained(res), vals, rtol=1e-11)
     np.testing.assert_allclose(res.loadings.to_numpy(), vecs, rtol=0, atol=1e-9)
     np.testing.assert_allclose(res.manifest["total_variance"], np.trace(cov), rtol=1e-12)
     np.testing.assert_allclose(res.features["mean"], np.average(x, axis=0, weights=w), rtol=1e-12)
@@ -113,7 +113,7 @@ def test_feature_weights_are_eigh_of_wcw(tmp_path, rng, method, scale, kind):
         c = np.corrcoef(x, rowvar=False)
     wcw = np.diag(f) @ c @ np.diag(f)
     vals, vecs = _eigh(wcw, 3)
-    np.testing.assert_allclose(res.explained_variance, vals, rtol=1e-11)
+    np.testing.assert_allclose(retained(res), vals, rtol=1e-11)
     np.testing.assert_allclose(res.loadings.to_numpy(), vecs, rtol=0, atol=1e-9)
     np.testing.assert_allclose(res.manifest["total_variance"], np.trace(wcw), rtol=1e-12)
     np.testing.assert_array_equal(res.features["weight"].to_numpy(), f)
@@ -144,7 +144,7 @@ def test_both_weights_with_a_vector_column(tmp_path, rng):
                                          "tolerance": 1e-12}))
     cov = np.cov(x, rowvar=False, aweights=w) / reliability_factor(w.sum(), (w * w).sum())
     vals, vecs = _eigh(np.diag(f) @ cov @ np.diag(f), 2)
-    np.testing.assert_allclose(res.explained_variance, vals, rtol=1e-11)
+    np.testing.assert_allclose(retained(res), vals, rtol=1e-11)
     np.testing.assert_allclose(res.loadings.to_numpy(), vecs, rtol=0, atol=1e-9)
 
 
@@ -190,8 +190,8 @@ def test_same_answer_across_schedulers_and_layouts(tmp_path, weighted_data, weig
     ref = weighted_reference[method]
     res = pcapipe.run(_weighted_config(root, table, layout, tmp_path / "r", method, scheduler=scheduler,
                                        workers=workers))
-    scale = ref.explained_variance.iloc[0]
-    np.testing.assert_allclose(res.explained_variance, ref.explained_variance, rtol=0, atol=1e-11 * scale)
+    scale = retained(ref)[0]
+    np.testing.assert_allclose(retained(res), retained(ref), rtol=0, atol=1e-11 * scale)
     np.testing.assert_allclose(res.loadings, ref.loadings, rtol=0, atol=1e-9)
     np.testing.assert_allclose(_scores(res), _scores(ref), rtol=0, atol=1e-9 * np.abs(_scores(ref)).max())
 
@@ -206,7 +206,7 @@ def test_local_cluster_matches_threads_weighted(tmp_path, weighted_data, weighte
     with Runner(ComputeConfig(scheduler="local-cluster", workers=1, memory_limit="512MiB", progress=False)) as r:
         res = pcapipe.run(_weighted_config(root, table, "many", tmp_path / "r", "matrix-free",
                                            scheduler="local-cluster"), runner=r)
-    np.testing.assert_allclose(res.explained_variance, ref.explained_variance, rtol=1e-11)
+    np.testing.assert_allclose(retained(res), retained(ref), rtol=1e-11)
     np.testing.assert_allclose(res.loadings, ref.loadings, rtol=0, atol=1e-9)
 
 

@@ -46,9 +46,9 @@ def _damage_manifest_missing(run):  # manifest gone: not a complete run
 
 def _damage_components_rows(run):  # the manifest says more components than the table has
     m = json.loads((run / "manifest.json").read_text())
-    m["n_components"] = 4
+    m["components"] = 4
     (run / "manifest.json").write_text(json.dumps(m))
-    return "components.parquet"
+    return "spectrum.parquet"
 
 
 @pytest.mark.parametrize("damage", [_damage_truncate, _damage_score_part, _damage_manifest_json,
@@ -109,7 +109,7 @@ def test_manifest_is_written_last(tmp_path, monkeypatch):
     write_parquet(tmp_path / "d", np.random.default_rng(0).standard_normal((50, 3)))
     pcapipe.run(make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run", model={"components": 2}))
     assert order[-1] == "manifest.json"
-    assert {"components.parquet", "loadings.parquet", "features.parquet"} <= set(order[:-1])
+    assert {"spectrum.parquet", "loadings.parquet", "features.parquet"} <= set(order[:-1])
 
 
 def test_existing_directory_refused_before_any_work(finished):

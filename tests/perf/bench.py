@@ -140,10 +140,11 @@ class Bench:
             return self._add(row)
         with open(best_manifest) as f:
             man = json.load(f)
-        comp = pq.read_table(os.path.join(out_dir, "components.parquet")).to_pydict()
+        spectrum = pq.read_table(os.path.join(out_dir, "spectrum.parquet"))
+        comp = spectrum.filter(spectrum.column("retained")).to_pydict()  # PC1..PCk only
         load = pq.read_table(os.path.join(out_dir, "loadings.parquet"))
         vectors = np.column_stack([load.column(f"PC{i + 1}").to_numpy() for i in range(case.k)])
-        values = np.asarray(comp["explained_variance"])
+        values = np.asarray(comp["eigenvalue"])
         row.inner = man["timings"]["total_seconds"]
         row.passes = f"{man['passes_over_data']} ({man['solver']['operator_applications']} C·V)"
         conv = np.asarray(comp["converged"])
@@ -155,7 +156,7 @@ class Bench:
                      "operator_applications": man["solver"]["operator_applications"],
                      "blocks_cached": man["blocks_cached"], "timings": man["timings"],
                      "unconverged": [{"component": int(i + 1),
-                                      "relative_residual": float(comp["residual_norm"][i] / theta1),
+                                      "relative_residual": float(comp["residual"][i] / theta1),
                                       "gap": float(comp["gap"][i])} for i in bad],
                      "warnings": res.stderr.count("did not reach tolerance"),
                      "n_rows": n_rows or case.n}
