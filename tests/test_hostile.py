@@ -170,7 +170,7 @@ def b_overwrite_previous_run(d):
 
 def e_replaced(d, setup, outputs):
     m = _manifest(setup.output)
-    assert m["n_components"] == 1 and m["inputs"][0]["path"].startswith(os.path.join(d, "data"))
+    assert m["components"] == 1 and m["inputs"][0]["path"].startswith(os.path.join(d, "data"))
 
 
 def b_bad_config_over_previous_run(d):
