@@ -12,7 +12,7 @@ import platform
 import numpy as np
 import pyarrow as pa
 
-from .config import config_to_dict
+from .config import config_to_dict, resolve_path
 from .weighted import weights_record
 from .writer import FORMAT_VERSION
 
@@ -91,7 +91,8 @@ def manifest_for(p, m, res, choice, total_variance, passes, cache, info, timings
         "inputs": p.plan.inputs_record(),
         "rows_read": int(m.rows_seen),
         "rows": int(m.n),
-        "weights": weights_record(p.plan, m, p.cfg.model.feature_weights),
+        "weights": weights_record(p.plan, m, p.cfg.model.feature_weights and
+                                  resolve_path(p.cfg, p.cfg.model.feature_weights)),
         "features": int(p.plan.n_features),
         "components": int(res.values.size),
         "total_variance": float(total_variance),

@@ -31,6 +31,7 @@ from .errors import InputError, OutputError
 from .formats import SPECTRUM_HEADERS, spectrum_cells
 from .figures import (BAR_COMPONENTS, LEVELS, fig_convergence, fig_cumulative, fig_heatmap, fig_loadings,
                       fig_scatter, fig_scree, png_bytes)
+from .weighted import weights_text
 from .writer import partial_dir_for, write_json_atomic
 
 __all__ = ["build_report", "write_report", "report_figures", "sample_scores", "summary_rows",
@@ -112,18 +113,6 @@ def summary_rows(manifest: dict) -> list[tuple[str, str]]:
         ("created", str(m.get("created", ""))),
         ("config", str(m.get("config_source", ""))),
     ]
-
-
-def weights_text(rec: dict | None) -> str:
-    """One line saying whether and how the data were weighted (manifest "weights")."""
-    rec = rec or {}
-    parts = []
-    if rec.get("row_weight"):
-        parts.append(f"rows weighted by column {rec['row_weight']!r} (frequency weights, sum {rec.get('sum', 0):.6g}, "
-                     f"{rec.get('rows_with_positive_weight')} rows with weight > 0)")
-    if rec.get("feature_weights"):
-        parts.append(f"features weighted by {rec['feature_weights']} (after centring and scaling)")
-    return "; ".join(parts) if parts else "none (unweighted)"
 
 
 def _check_color_by(manifest: dict, color_by: str | None) -> None:

@@ -11,6 +11,7 @@ from .config import format_size, parse_memory
 from .errors import InputError
 from .formats import SPECTRUM_HEADERS, spectrum_cells
 from .operators import choose_method
+from .weighted import weights_text
 
 __all__ = ["check_report", "describe_text", "describe_json", "top_loadings", "spectrum_table"]
 
@@ -149,6 +150,7 @@ def describe_text(res, top: int) -> str:
         f"{m['passes_over_data']} pass(es) over the data, {state}",
         f"total variance {m['total_variance']:.6g}; residual = ||C v - theta v||, "
         f"tolerance {model.get('tolerance')} x the first eigenvalue",
+        f"weights: {weights_text(m.get('weights'))}",
         "",
         spectrum_table(res),
     ]

@@ -39,7 +39,7 @@ from .errors import InputError
 from .moments import Moments, _gram
 
 __all__ = ["weighted_batch_moments", "weight_features", "reliability_factor", "check_total_weight",
-           "feature_weight_array", "input_scale", "weights_record"]
+           "feature_weight_array", "input_scale", "weights_record", "weights_text"]
 
 
 def _missing_rows(x, w, missing, fill):
@@ -177,3 +177,15 @@ def weights_record(plan, m: Moments, feature_weights_path: str) -> dict:
             "to_reliability_weights": reliability_factor(m.weight, m.weight2),
         })
     return rec
+
+
+def weights_text(rec: dict | None) -> str:
+    """One line saying whether and how the data were weighted (manifest "weights")."""
+    rec = rec or {}
+    parts = []
+    if rec.get("row_weight"):
+        parts.append(f"rows weighted by column {rec['row_weight']!r} (frequency weights, sum {rec.get('sum', 0):.6g}, "
+                     f"{rec.get('rows_with_positive_weight')} rows with weight > 0)")
+    if rec.get("feature_weights"):
+        parts.append(f"features weighted by {rec['feature_weights']} (after centring and scaling)")
+    return "; ".join(parts) if parts else "none (unweighted)"
