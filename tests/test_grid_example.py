@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 
 import pcapipe
-from conftest import ROOT
+from conftest import ROOT, retained
 
 sys.path.insert(0, os.path.join(ROOT, "data_demo"))
 import make_grid  # noqa: E402
@@ -34,7 +34,7 @@ def test_grid_example_is_area_weighted(tmp_path):
     f = table["weight"].to_numpy()
     c = np.cov(x, rowvar=False, fweights=days)  # month lengths are frequency weights (numpy docs, cov)
     vals, vecs = np.linalg.eigh(np.diag(f) @ c @ np.diag(f))
-    np.testing.assert_allclose(weighted.explained_variance, vals[::-1][:3], rtol=1e-10)
+    np.testing.assert_allclose(retained(weighted), vals[::-1][:3], rtol=1e-10)
     np.testing.assert_allclose(np.abs(weighted.loadings.to_numpy().T @ vecs[:, ::-1][:, :3]), np.eye(3), atol=1e-7)
 
     polar, tropical = make_grid.patterns()
