@@ -9,7 +9,6 @@ column fails in seconds instead of an hour into the run.
 from __future__ import annotations
 
 import fnmatch
-import glob
 import logging
 import os
 from dataclasses import dataclass
@@ -18,6 +17,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .config import Config, resolve_path
+from .discover import find_inputs, resolve_inputs
 from .errors import InputError
 from .weight_table import read_feature_weights
 
@@ -68,6 +68,8 @@ class Plan:
     itemsize: int
     row_weight: str = ""
     feature_weights: tuple[float, ...] | None = None
+    skipped: tuple[str, ...] = ()        # files left out: a name below a directory starts with _ or .
+    duplicates: tuple[tuple[str, str], ...] = ()  # (path, same file as) reached twice
 
     @property
     def n_rows(self) -> int:
@@ -87,39 +89,6 @@ class Plan:
             {"path": f.path, "bytes": f.size, "mtime_ns": f.mtime_ns, "rows": f.n_rows}
             for f in self.files
         ]
-
-
-def resolve_inputs(patterns, base_dir: str) -> list[str]:
-    """Resolve files, directories and globs to a sorted list of Parquet files.
-
-    Directories, named or matched by a glob, contribute every ``*.parquet``
-    file below them (a dataset written as ``table.parquet/part-*.parquet`` is
-    a directory).  Each pattern must match at least one file, so a typo is
-    not silently ignored.
-
-    Raises
-    ------
-    InputError
-        A pattern matches no file.
-    """
-    found: set[str] = set()
-    for pattern in patterns:
-        path = os.path.join(base_dir, os.path.expanduser(pattern))
-        hits = glob.glob(path, recursive=True) if glob.has_magic(path) else [path]
-        files = []
-        for hit in hits:
-            if os.path.isdir(hit):
-                files += glob.glob(os.path.join(glob.escape(hit), "**", "*.parquet"), recursive=True)
-            elif os.path.isfile(hit):
-                files.append(hit)
-        files = [f for f in files if os.path.isfile(f)]
-        if not files:
-            raise InputError(
-                f"input.paths: {pattern!r} matches no file (looked for {path}); check the path, or "
-                "write it relative to the config file's directory"
-            )
-        found.update(os.path.abspath(f) for f in files)
-    return sorted(found)
 
 
 def _open_footer(path: str) -> pq.ParquetFile:
@@ -289,7 +258,8 @@ def make_plan(cfg: Config) -> Plan:
         A pattern matches nothing, a file is not Parquet, a column is missing,
         not numeric, or differs in type between files.
     """
-    paths = resolve_inputs(cfg.input.paths, cfg.base_dir)
+    found = find_inputs(cfg.input.paths, cfg.base_dir)
+    paths = found.files
     first = _open_footer(paths[0])
     schema0 = first.schema_arrow
     _check_keep(cfg, schema0, paths[0])
@@ -328,7 +298,7 @@ def make_plan(cfg: Config) -> Plan:
     if cfg.model.feature_weights:
         fw = read_feature_weights(resolve_path(cfg, cfg.model.feature_weights), features)
     return Plan(tuple(files), tuple(blocks), features, columns, vec, tuple(cfg.input.keep), max(itemsize, 1),
-                weight, fw)
+                weight, fw, skipped=found.skipped, duplicates=found.duplicates)
 
 
 def _check_row_weight(schema: pa.Schema, column: str, path: str) -> None:

@@ -43,6 +43,7 @@ def check_report(config, overrides=()) -> str:
     lines = [
         f"config      {cfg.source}",
         f"files       {len(plan.files)} ({format_size(plan.total_bytes)}), {len(plan.blocks)} blocks (row groups)",
+        *_input_notes(plan),
         f"rows        {n}",
         f"features    {d}" + (f" from vector column {plan.vector_column!r}" if plan.vector_column else
                               f": {', '.join(plan.features[:6])}{', ...' if d > 6 else ''}"),
@@ -56,6 +57,19 @@ def check_report(config, overrides=()) -> str:
         "ok: nothing was written",
     ]
     return "\n".join(lines)
+
+
+def _input_notes(plan) -> list[str]:
+    """What the file search left out, so a surprising row count can be explained."""
+    lines = []
+    if plan.skipped:
+        lines.append(f"skipped     {len(plan.skipped)} Parquet file(s) under names starting with _ or . "
+                     f"(writers' leftovers, e.g. {plan.skipped[0]})")
+    if plan.duplicates:
+        path, same = plan.duplicates[0]
+        lines.append(f"duplicates  {len(plan.duplicates)} path(s) reach a file already listed (symlink or "
+                     f"hardlink), read once: e.g. {path} = {same}")
+    return lines
 
 
 def _check_top(top: int) -> None:

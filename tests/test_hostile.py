@@ -18,6 +18,8 @@ from dataclasses import dataclass, field
 from typing import Callable
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 
 import pcapipe
@@ -194,6 +196,84 @@ def b_incomplete_foreign_dir(d):
     return _config(d, "out", output={"overwrite": True})
 
 
+# ------------------------------------------- 2. writers' leftovers, 3. one file reached twice
+
+def _rows_are(n, skipped=None, duplicates=None):
+    """A successful case: check and run both see exactly n rows, and check says what it left out."""
+    def expect(d, setup, outputs):
+        report = outputs["check"].stdout
+        assert f"rows        {n}\n" in report, report
+        for word, count in (("skipped", skipped), ("duplicates", duplicates)):
+            lines = [ln for ln in report.splitlines() if ln.startswith(word)]
+            assert lines == ([] if count is None else [lines[0]]), report
+            if count is not None:
+                assert lines[0].split()[1] == str(count), lines
+                assert word in outputs["run"].stderr or "read once" in outputs["run"].stderr
+        assert _manifest(setup.output)["n_samples"] == n
+    return expect
+
+
+def _spark_table(d, glob_pattern=False):
+    """The layout Spark's file committer leaves (from memory): part files, _SUCCESS, .crc
+    checksums, and a failed task attempt's part file under _temporary/."""
+    rng = np.random.default_rng(3)
+    table = os.path.join(d, "table")
+    os.makedirs(table)
+    for i, rows in enumerate((50, 44)):
+        x = rng.standard_normal((rows, 3))
+        name = f"part-{i:05d}-8c4e7f3a-1b2d-4e5f-9a0b-c1d2e3f4a5b6-c000.snappy.parquet"
+        pq.write_table(pa.table({"a": x[:, 0], "b": x[:, 1], "c": x[:, 2]}), os.path.join(table, name))
+        with open(os.path.join(table, f".{name}.crc"), "wb") as f:
+            f.write(b"crc\0\0\0\0")
+    open(os.path.join(table, "_SUCCESS"), "w").close()
+    attempt = os.path.join(table, "_temporary", "0", "_temporary", "attempt_202612020101_0003_m_000001_7")
+    os.makedirs(attempt)
+    x = rng.standard_normal((13, 3))  # 13 of 107 rows: the "n off by 12%" of the issue
+    pq.write_table(pa.table({"a": x[:, 0], "b": x[:, 1], "c": x[:, 2]}),
+                   os.path.join(attempt, "part-00001-8c4e7f3a-1b2d-4e5f-9a0b-c1d2e3f4a5b6-c000.snappy.parquet"))
+    return _config(d, "out", paths=["table/**/*.parquet" if glob_pattern else "table"])
+
+
+def b_spark_directory(d):
+    return _spark_table(d)
+
+
+def b_spark_glob(d):
+    return _spark_table(d, glob_pattern=True)
+
+
+def b_polars_symlink(d):
+    import polars as pl
+
+    x = np.random.default_rng(4).standard_normal((70, 3))
+    os.makedirs(os.path.join(d, "data"))
+    pl.DataFrame({"a": x[:, 0], "b": x[:, 1], "c": x[:, 2]}).write_parquet(os.path.join(d, "data", "p.parquet"))
+    os.symlink("p.parquet", os.path.join(d, "data", "q.parquet"))  # a second name for the same file
+    return _config(d, "out")
+
+
+def b_duckdb_hardlink(d):
+    import duckdb
+
+    os.makedirs(os.path.join(d, "data", "sub"))
+    path = os.path.join(d, "data", "duck.parquet")
+    con = duckdb.connect()
+    con.execute("SELECT setseed(0.5)")
+    con.execute(f"COPY (SELECT random() AS a, random() * 3 AS b, random() * 2 AS c FROM range(80)) TO '{path}'")
+    con.close()
+    os.link(path, os.path.join(d, "data", "sub", "again.parquet"))
+    return _config(d, "out", paths=["data", "data/duck.parquet"])
+
+
+def b_pandas_default(d):
+    import pandas as pd
+
+    x = np.random.default_rng(5).standard_normal((30, 3))
+    os.makedirs(os.path.join(d, "data"))
+    pd.DataFrame(x, columns=["a", "b", "c"]).to_parquet(os.path.join(d, "data", "frame.parquet"))
+    return _config(d, "out")
+
+
 CASES = [
     # output = the input directory, overwrite = true: used to delete the inputs and exit 0
     ("out-is-input-dir", Case(b_out_is_input_dir, 2, ("output.directory", "is the input path",
@@ -232,6 +312,16 @@ CASES = [
     # a foreign directory where the .incomplete sibling goes: never emptied
     ("incomplete-foreign-dir", Case(b_incomplete_foreign_dir, 2, ("out.incomplete", "draft.txt",
                                                                   "not written by pcapipe"))),
+    # 2. a Spark-style directory: _temporary/.../part-*.parquet of a failed attempt is not data
+    ("spark-directory", Case(b_spark_directory, 0, expect=_rows_are(94, skipped=1))),
+    # the same table through a recursive glob
+    ("spark-glob", Case(b_spark_glob, 0, expect=_rows_are(94, skipped=1))),
+    # 3. polars' default file and a symlink to it in the same directory: read once
+    ("polars-symlink", Case(b_polars_symlink, 0, expect=_rows_are(70, duplicates=1))),
+    # DuckDB COPY ... TO, hardlinked below the same directory and also named directly: read once
+    ("duckdb-hardlink", Case(b_duckdb_hardlink, 0, expect=_rows_are(80, duplicates=1))),
+    # pandas' default to_parquet (a RangeIndex is kept as metadata, not as a column)
+    ("pandas-default", Case(b_pandas_default, 0, expect=_rows_are(30))),
 ]
 
 
