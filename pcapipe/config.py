@@ -108,6 +108,10 @@ MEMORY_UNITS: dict[str, int] = {
     "b": 1, "kb": 10**3, "mb": 10**6, "gb": 10**9, "tb": 10**12,
     "kib": 2**10, "mib": 2**20, "gib": 2**30, "tib": 2**40,
 }
+# Workers of one local scheduler: more than any workstation has cores (a typo guard).
+MAX_WORKERS = 1024
+# Per worker: one decoded batch is at least 1 MiB (reader.batch_rows_for).
+MIN_MEMORY = 1 << 20
 # key -> (test, requirement); message "<value> <requirement>; e.g. <example>".
 # NaN fails every comparison, so it is rejected by each float test.
 _LIMITS: dict[str, tuple[Callable[[Any], bool], str]] = {
@@ -115,7 +119,8 @@ _LIMITS: dict[str, tuple[Callable[[Any], bool], str]] = {
     "model.max_iterations": (lambda v: v >= 1, "is below 1"),
     "model.oversample": (lambda v: v >= 0, "is negative"),
     "model.seed": (lambda v: v >= 0, "is negative"),
-    "compute.workers": (lambda v: v >= 0, "is negative; 0 means one per core"),
+    "compute.workers": (lambda v: 0 <= v <= MAX_WORKERS,
+                        f"is not between 0 and {MAX_WORKERS}; 0 means one per core"),
     "compute.connect_timeout": (lambda v: 0.0 < v < math.inf,
                                 "is not a positive, finite number of seconds"),
     # An empty directory would resolve to the config's own directory.
@@ -231,9 +236,12 @@ def _scheduler_rule(value: str) -> str | None:
 
 def _memory_rule(value: str) -> str | None:
     try:
-        parse_memory(value)
+        n_bytes = parse_memory(value)
     except ConfigError as e:
         return str(e).partition(": ")[2]  # the caller adds its own key prefix
+    if n_bytes is not None and n_bytes < MIN_MEMORY:
+        return (f"{_show(value)} is below the minimum of {format_size(MIN_MEMORY)} per worker (one decoded "
+                f"batch); e.g. {_example('compute.memory_limit')}")
     return None
 
 
@@ -352,7 +360,8 @@ def _validate(ctx: _Context, raw: Mapping[str, Any]) -> dict[str, Any]:
 def _read_toml(path: str, label: str) -> dict[str, Any]:
     try:
         with open(path, "rb") as fh:
-            return tomllib.load(fh)
+            # Windows editors save UTF-8 with a byte-order mark, which TOML does not allow
+            return tomllib.loads(fh.read().decode("utf-8").removeprefix("\ufeff"))
     except FileNotFoundError as e:
         raise ConfigError(f"config file not found: {label}") from e
     except tomllib.TOMLDecodeError as e:

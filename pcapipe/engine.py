@@ -28,6 +28,7 @@ from .compute import Runner, _cores
 from .config import Config, load_config, resolve_path
 from .checkpoint import Checkpoint, job_identity
 from .errors import InputError, OutputError
+from .guards import moment_warnings
 from .moments import Moments, covariance_from
 from .operators import DenseOperator, MatrixFreeOperator, MethodChoice, choose_method
 from .outputs import build_tables, component_names, manifest_for
@@ -260,6 +261,9 @@ class _Job:
         passes = DataPasses(p.plan, runner, batch_rows_for(d, info.memory_per_worker))
         passes.count = self.state.get("passes", 0)
         m = self._moments(passes, choice)
+        warned = moment_warnings(p.plan, m, p.cfg.model.scale, p.cfg.model.center)  # row ids, one dominant feature
+        for text in warned:
+            log.warning("%s", text)
         transform, std, scale_used = _preprocessing(p, m)
         res, trace, cache = self._solve(passes, choice, m, transform, scale_used)
         vectors = _orient(res.vectors)
@@ -272,7 +276,7 @@ class _Job:
         self.timings["total_seconds"] = sum(v for k, v in self.timings.items() if k != "total_seconds")
         for name, table in build_tables(p.plan, m, res, vectors, std, scale_used, trace).items():
             p.writer.write_table(name, table)
-        extra = {"resumed": self.state.get("resumes", [])}
+        extra = {"resumed": self.state.get("resumes", []), "warnings": warned}
         manifest = manifest_for(p, m, res, choice, trace, passes.count, cache, info, self.timings,
                                 score_rows, version=__version__, extra=extra)
         if p.cfg.output.report:

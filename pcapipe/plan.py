@@ -11,6 +11,7 @@ from __future__ import annotations
 import fnmatch
 import logging
 import os
+import re
 from dataclasses import dataclass
 
 import pyarrow as pa
@@ -20,8 +21,14 @@ from .config import Config, resolve_path
 from .discover import find_inputs, resolve_inputs
 from .errors import InputError
 from .weight_table import read_feature_weights
+from .guards import FooterStats
 
 log = logging.getLogger("pcapipe")
+
+# pandas.DataFrame.to_parquet stores a non-default index as these columns: not measurements.
+_PANDAS_INDEX = re.compile(r"__index_level_[0-9]+__")
+# Columns the score files hold beside the keep columns and PC1..PCk (DESIGN.md, run directory).
+MONITOR_COLUMNS = ("t2", "spe", "t2_alarm", "spe_alarm")
 
 __all__ = ["FileInfo", "Block", "Plan", "make_plan", "resolve_inputs", "feature_names_for"]
 
@@ -70,6 +77,9 @@ class Plan:
     feature_weights: tuple[float, ...] | None = None
     skipped: tuple[str, ...] = ()        # files left out: a name below a directory starts with _ or .
     duplicates: tuple[tuple[str, str], ...] = ()  # (path, same file as) reached twice
+    left_out: tuple[tuple[str, str], ...] = ()    # default selection: (column, why it is not a feature)
+    row_ids: tuple[tuple[str, int, int, bool], ...] = ()  # (feature, min, max, proven) from the footers
+    hints: tuple[str, ...] = ()          # guard-rail warnings from the footers (pcapipe check)
 
     @property
     def n_rows(self) -> int:
@@ -128,11 +138,23 @@ def _first_vector(path: str, pf: pq.ParquetFile, column: str):
         if pf.metadata.row_group(rg).num_rows:
             batch = next(pf.iter_batches(batch_size=1, row_groups=[rg], columns=[column]))
             return batch.column(0)[0]
-    raise InputError(f"{path}: input.vector_column {column!r} has no rows to take the vector length from; "
-                     "put a file with rows first in input.paths")
+    raise AssertionError(f"{path} has rows but no row group with rows")  # footers say otherwise
 
 
-def _vector_length(path: str, pf: pq.ParquetFile, column: str, schema: pa.Schema) -> int:
+def _file_with_rows(paths, opened: dict, column: str) -> tuple[str, pq.ParquetFile | None]:
+    """The first file with rows (its footer is kept in ``opened`` for the planning loop)."""
+    for path in paths:
+        pf = opened[path] if path in opened else opened.setdefault(path, _open_footer(path))
+        if pf.metadata.num_rows:
+            schema = pf.schema_arrow
+            usable = schema.get_field_index(column) >= 0 and _is_list(schema.field(column).type)
+            return path, pf if usable else None  # else the schema check names the file
+    raise InputError(f"input.vector_column {column!r}: none of the {len(paths)} input file(s) has rows to "
+                     "take the vector length from; add files with rows to input.paths")
+
+
+def _vector_length(paths, opened: dict, column: str, schema: pa.Schema) -> int:
+    path = paths[0]
     t = schema.field(column).type
     if not _is_list(t):
         raise InputError(
@@ -148,7 +170,10 @@ def _vector_length(path: str, pf: pq.ParquetFile, column: str, schema: pa.Schema
         length = t.list_size
     else:
         # The length of a variable-length list is checked on every row when the
-        # data are read; here it is taken from the first row.
+        # data are read; here it is taken from the first row of the first file with rows.
+        path, pf = _file_with_rows(paths, opened, column)
+        if pf is None:
+            return 0
         value = _first_vector(path, pf, column)
         if not value.is_valid:
             raise InputError(f"{path}: input.vector_column {column!r}: row 0 is null; every row needs a "
@@ -165,8 +190,26 @@ def feature_names_for(column: str, length: int) -> tuple[str, ...]:
     return tuple(f"{column}[{i}]" for i in range(length))
 
 
-def _matches(name: str, patterns) -> bool:
-    return any(fnmatch.fnmatchcase(name, p) for p in patterns)
+def _match(name: str, pattern: str, names) -> bool:
+    """Glob match, except that a pattern which is exactly a column's name (``br[0]``) means that column."""
+    return name == pattern if pattern in names else fnmatch.fnmatchcase(name, pattern)
+
+
+def _matches(name: str, patterns, names) -> bool:
+    return any(_match(name, p, names) for p in patterns)
+
+
+def _check_keep_names(cfg: Config) -> None:
+    """A keep column must not share its name with a column pcapipe adds to the scores."""
+    comp = cfg.model.components
+    pcs = f"PC1..PC{comp}" if isinstance(comp, int) else "PC1, PC2, ..."
+    for name in cfg.input.keep:
+        pc = re.fullmatch(r"PC([1-9][0-9]*)", name)
+        if name in MONITOR_COLUMNS or (pc and (not isinstance(comp, int) or int(pc.group(1)) <= comp)):
+            raise InputError(
+                f"input.keep: column {name!r} has the name of a column the scores get ({pcs}, "
+                f"{', '.join(MONITOR_COLUMNS)}); leave it out of input.keep, or rename it in the data"
+            )
 
 
 def _check_keep(cfg: Config, schema: pa.Schema, path: str) -> None:
@@ -183,24 +226,25 @@ def _select_features(cfg: Config, schema: pa.Schema, path: str) -> tuple[str, ..
         raise InputError(f"{path}: input.features names the input.row_weight column {weight!r}; the row "
                          "weights are never a feature: remove it from input.features")
     names = [n for n in schema.names if n not in keep and n != weight]
+    every = set(schema.names)
     if cfg.input.features:
         for p in cfg.input.features:
-            if not any(fnmatch.fnmatchcase(n, p) for n in names):
-                held = [n for n in keep if fnmatch.fnmatchcase(n, p)]
+            if not any(_match(n, p, every) for n in names):
+                held = [n for n in keep if _match(n, p, every)]
                 why = (f"matches only input.keep column(s) {', '.join(held)}, which are never features"
                        if held else f"matches no column; columns are {_preview(names)}")
                 raise InputError(f"{path}: input.features pattern {p!r} {why}; fix input.features")
-        chosen = [n for n in names if _matches(n, cfg.input.features)]
+        chosen = [n for n in names if _matches(n, cfg.input.features, every)]
         for n in chosen:
             if not _is_numeric(schema.field(n).type):
                 raise _not_numeric(path, n, schema.field(n).type)
     else:
-        chosen = [n for n in names if _is_numeric(schema.field(n).type)]
+        chosen = [n for n in names if _is_numeric(schema.field(n).type) and not _PANDAS_INDEX.fullmatch(n)]
     for p in cfg.input.exclude:
-        if not any(fnmatch.fnmatchcase(n, p) for n in chosen):
+        if not any(_match(n, p, every) for n in chosen):
             # Not an error: one exclude list is often shared by several datasets.
             log.warning("input.exclude pattern %r removes no feature column of %s", p, path)
-    chosen = [n for n in chosen if not _matches(n, cfg.input.exclude)]
+    chosen = [n for n in chosen if not _matches(n, cfg.input.exclude, every)]
     if not chosen:
         raise InputError(
             f"{path}: no numeric feature columns selected (input.features={list(cfg.input.features)}, "
@@ -208,6 +252,23 @@ def _select_features(cfg: Config, schema: pa.Schema, path: str) -> tuple[str, ..
             "name numeric columns in input.features"
         )
     return tuple(chosen)
+
+
+def _left_out(cfg: Config, schema: pa.Schema, chosen) -> list[tuple[str, str]]:
+    """Default selection: the columns that are neither features nor keep nor excluded, and why."""
+    if cfg.input.features or cfg.input.vector_column:
+        return []
+    every = set(schema.names)
+    out = []
+    for f in schema:
+        if (f.name in chosen or f.name in cfg.input.keep or f.name == cfg.input.row_weight
+                or _matches(f.name, cfg.input.exclude, every)):
+            continue
+        t = f.type
+        why = ("boolean" if pa.types.is_boolean(t) else "decimal" if pa.types.is_decimal(t)
+               else "pandas index" if _PANDAS_INDEX.fullmatch(f.name) else str(t))
+        out.append((f.name, why))
+    return out
 
 
 def _preview(names, limit: int = 8) -> str:
@@ -250,7 +311,7 @@ def make_plan(cfg: Config) -> Plan:
     """Resolve the inputs of ``cfg`` and check every file's schema.
 
     Only footers are read (and, for a variable-length vector column, the
-    first row, to learn the vector length).
+    first row of the first file with rows, to learn the vector length).
 
     Raises
     ------
@@ -258,12 +319,14 @@ def make_plan(cfg: Config) -> Plan:
         A pattern matches nothing, a file is not Parquet, a column is missing,
         not numeric, or differs in type between files.
     """
+    _check_keep_names(cfg)
     found = find_inputs(cfg.input.paths, cfg.base_dir)
     paths = found.files
     first = _open_footer(paths[0])
     schema0 = first.schema_arrow
     _check_keep(cfg, schema0, paths[0])
     vec = cfg.input.vector_column
+    opened = {paths[0]: first}
     length = 0
     if vec:
         if schema0.get_field_index(vec) < 0:
@@ -271,34 +334,29 @@ def make_plan(cfg: Config) -> Plan:
                 f"{paths[0]}: input.vector_column {vec!r} is not a column; columns are "
                 f"{_preview(schema0.names)}; fix input.vector_column"
             )
-        length = _vector_length(paths[0], first, vec, schema0)
+        length = _vector_length(paths, opened, vec, schema0)
         columns: tuple[str, ...] = (vec,)
-        features = feature_names_for(vec, length)
-        itemsize = schema0.field(vec).type.value_type.bit_width // 8
     else:
         columns = _select_features(cfg, schema0, paths[0])
-        features = columns
-        itemsize = max(schema0.field(c).type.bit_width // 8 for c in columns)
     weight = cfg.input.row_weight
     if weight:
         _check_row_weight(schema0, weight, paths[0])
-    types = {c: schema0.field(c).type for c in (*columns, *cfg.input.keep, *([weight] if weight else []))}
-    files, blocks = [], []
-    for fi, path in enumerate(paths):
-        pf = first if fi == 0 else _open_footer(path)
-        _check_file_schema(path, pf.schema_arrow, paths[0], types, length)
-        md = pf.metadata
-        rg_rows = tuple(md.row_group(i).num_rows for i in range(md.num_row_groups))
-        st = os.stat(path)
-        files.append(FileInfo(path, st.st_size, st.st_mtime_ns, md.num_rows, rg_rows))
-        for rg, n in enumerate(rg_rows):
-            if n:
-                blocks.append(Block(len(blocks), fi, path, rg, n))
+    scan = _Scan(cfg, paths, schema0, columns, length)
+    files, blocks = scan.run(opened)
+    features = feature_names_for(vec, length) if vec else columns
+    width = schema0.field(vec).type.value_type.bit_width if vec else \
+        max(schema0.field(c).type.bit_width for c in columns)
+    left_out = tuple(_left_out(cfg, schema0, columns)) + scan.left_out()
+    if left_out:
+        log.info("input.features: %d column(s) left out of the default selection: %s", len(left_out),
+                 ", ".join(f"{n} ({why})" for n, why in left_out))
+    n_rows = sum(f.n_rows for f in files)
     fw = None
     if cfg.model.feature_weights:
         fw = read_feature_weights(resolve_path(cfg, cfg.model.feature_weights), features)
-    return Plan(tuple(files), tuple(blocks), features, columns, vec, tuple(cfg.input.keep), max(itemsize, 1),
-                weight, fw, skipped=found.skipped, duplicates=found.duplicates)
+    return Plan(tuple(files), tuple(blocks), features, columns, vec, tuple(cfg.input.keep), max(width // 8, 1),
+                weight, fw, found.skipped, found.duplicates, left_out, scan.stats.row_ids(n_rows),
+                tuple(scan.stats.hints(n_rows, cfg.model.scale, paths[0])))
 
 
 def _check_row_weight(schema: pa.Schema, column: str, path: str) -> None:
@@ -310,3 +368,51 @@ def _check_row_weight(schema: pa.Schema, column: str, path: str) -> None:
     if not _is_numeric(t):
         raise InputError(f"{path}: input.row_weight column {column!r} has type {t}, not numeric; the row "
                          "weights must be numbers >= 0")
+
+
+class _Scan:
+    """The planning loop over the files: schema checks, row groups, footer statistics.
+
+    With the default feature selection, a numeric column that a later file has
+    but the first lacks is left out (and said so); a feature of the first file
+    missing from a later one is an error, as with named features.
+    """
+
+    def __init__(self, cfg: Config, paths, schema0: pa.Schema, columns, length: int):
+        self.cfg, self.paths, self.length = cfg, paths, length
+        self.columns = tuple(columns)
+        weight = (cfg.input.row_weight,) if cfg.input.row_weight else ()
+        self.types = {c: schema0.field(c).type for c in (*columns, *cfg.input.keep, *weight)}
+        self.default = not (cfg.input.features or cfg.input.vector_column)
+        self.later: dict[str, list[str]] = {}    # numeric columns of later files missing from the first
+        self.stats = FooterStats(schema0, () if cfg.input.vector_column else columns)
+
+    def run(self, opened: dict):
+        files, blocks = [], []
+        for fi, path in enumerate(self.paths):
+            pf = opened.pop(path, None) or _open_footer(path)
+            schema = pf.schema_arrow
+            if self.default and fi:
+                self._note_drift(path, schema)
+            _check_file_schema(path, schema, self.paths[0], self.types, self.length)
+            md = pf.metadata
+            self.stats.add(md)
+            rg_rows = tuple(md.row_group(i).num_rows for i in range(md.num_row_groups))
+            st = os.stat(path)
+            files.append(FileInfo(path, st.st_size, st.st_mtime_ns, md.num_rows, rg_rows))
+            for rg, n in enumerate(rg_rows):
+                if n:
+                    blocks.append(Block(len(blocks), fi, path, rg, n))
+        return files, blocks
+
+    def _note_drift(self, path: str, schema: pa.Schema) -> None:
+        every = set(schema.names)
+        for f in schema:
+            if (f.name not in self.types and _is_numeric(f.type) and not _PANDAS_INDEX.fullmatch(f.name)
+                    and not _matches(f.name, self.cfg.input.exclude, every)):
+                self.later.setdefault(f.name, []).append(path)
+
+    def left_out(self) -> tuple[tuple[str, str], ...]:
+        n = len(self.paths)
+        return tuple((c, f"missing from {n - len(w)} of {n} files, e.g. {self.paths[0]}")
+                     for c, w in self.later.items())

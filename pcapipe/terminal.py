@@ -54,9 +54,22 @@ def check_report(config, overrides=()) -> str:
         f"compute     {cfg.compute.scheduler}, {workers} worker(s), {format_size(memory)} {memory_note}",
         f"memory      ~{format_size(task_bytes)} per task (batches of {batch} rows)",
         f"output      {p.writer.directory}",
+        *_feature_notes(plan),
         "ok: nothing was written",
     ]
     return "\n".join(lines)
+
+
+def _feature_notes(plan) -> list[str]:
+    """Columns the default selection left out, and the guard-rail warnings the footers allow."""
+    lines = []
+    if plan.left_out:
+        shown = ", ".join(f"{n} ({why})" for n, why in plan.left_out[:8])
+        more = f", ... ({len(plan.left_out)} in all)" if len(plan.left_out) > 8 else ""
+        lines.append(f"left out    {len(plan.left_out)} column(s) not selected as features: {shown}{more}; "
+                     "name columns in input.features to choose, cast booleans and decimals to float to use them")
+    lines += [f"warning     {text}" for text in plan.hints]
+    return lines
 
 
 def _input_notes(plan) -> list[str]:

@@ -208,7 +208,12 @@ BAD = [
     (_with(model={"oversample": -1}), "model.oversample: -1 is negative; e.g. oversample = 8"),
     (_with(model={"seed": -1}), "model.seed: -1 is negative; e.g. seed = 0"),
     (_with(compute={"workers": -1}),
-     "compute.workers: -1 is negative; 0 means one per core; e.g. workers = 0"),
+     "compute.workers: -1 is not between 0 and 1024; 0 means one per core; e.g. workers = 0"),
+    (_with(compute={"workers": 10**18}),  # issue 10: an absurd count ran silently
+     "compute.workers: 1000000000000000000 is not between 0 and 1024"),
+    (_with(compute={"memory_limit": "1B"}),  # issue 10: ran silently; the minimum is stated
+     'compute.memory_limit: "1B" is below the minimum of 1.0 MiB per worker'),
+    (_with(compute={"memory_limit": "1048575"}), 'compute.memory_limit: "1048575" is below the minimum'),
     (_with(compute={"connect_timeout": 0}), "compute.connect_timeout: 0.0 is not a "
      "positive, finite number of seconds; e.g. connect_timeout = 10.0"),
     (_with(compute={"connect_timeout": math.inf}), "compute.connect_timeout: inf is not"),
@@ -374,7 +379,7 @@ OVERRIDES = [
     ("output.directory=runs/x", "output.directory", "runs/x"),    # bare string, no quotes
     ('output.directory="my runs"', "output.directory", "my runs"),  # quoted string
     ("output.directory=2024-01-01", "output.directory", "2024-01-01"),  # not a date
-    ("compute.memory_limit=1000000", "compute.memory_limit", "1000000"),  # not an int
+    ("compute.memory_limit=2000000", "compute.memory_limit", "2000000"),  # not an int
     ("compute.scheduler=tcp://10.0.0.5:8786", "compute.scheduler", "tcp://10.0.0.5:8786"),
     ("input.paths=more/*.parquet", "input.paths", ("more/*.parquet",)),  # one bare path
     (" model.seed = 7", "model.seed", 7),                         # spaces around '='

@@ -209,7 +209,7 @@ def _rows_are(n, skipped=None, duplicates=None):
             if count is not None:
                 assert lines[0].split()[1] == str(count), lines
                 assert word in outputs["run"].stderr or "read once" in outputs["run"].stderr
-        assert _manifest(setup.output)["n_samples"] == n
+        assert _manifest(setup.output)["rows"] == n
     return expect
 
 
@@ -274,6 +274,146 @@ def b_pandas_default(d):
     return _config(d, "out")
 
 
+# ----------------------------------------------------- 4. keep columns named like outputs
+
+def _keep_named(name, components=2):
+    def build(d):
+        import polars as pl
+
+        x = np.random.default_rng(6).standard_normal((40, 3))
+        os.makedirs(os.path.join(d, "data"))
+        pl.DataFrame({name: np.arange(40), "a": x[:, 0], "b": x[:, 1], "c": x[:, 2]}).write_parquet(
+            os.path.join(d, "data", "p.parquet"))
+        return _config(d, "out", input={"keep": [name]}, model={"components": components})
+    return build
+
+
+# ------------------------------------------------ 14. config text and literal column names
+
+def b_config_with_bom(d):
+    _data(d)
+    setup = _config(d, "out")
+    with open(setup.config, "rb") as f:
+        text = f.read()
+    with open(setup.config, "wb") as f:
+        f.write(b"\xef\xbb\xbf" + text)  # as Windows Notepad saves "UTF-8 with BOM"
+    return setup
+
+
+def b_feature_named_like_a_glob(d):
+    x = np.random.default_rng(8).standard_normal((30, 3))
+    os.makedirs(os.path.join(d, "data"))
+    # "br[0]" as a glob would match "br0" only; as a name it is the first column
+    pq.write_table(pa.table({"br[0]": x[:, 0], "br0": x[:, 1], "br[1]": x[:, 2]}),
+                   os.path.join(d, "data", "b.parquet"))
+    return _config(d, "out", input={"features": ["br[0]", "br[1]"]}, model={"components": 1})
+
+
+def _check_says(*lines):
+    def expect(d, setup, outputs):
+        for line in lines:
+            assert line in outputs["check"].stdout.splitlines(), outputs["check"].stdout
+    return expect
+
+
+# ------------------------------- 11. vector length, 12. what default selection leaves out
+
+def b_vector_first_file_empty(d):
+    import polars as pl
+
+    os.makedirs(os.path.join(d, "data"))
+    # the first file in sorted order has the column but no rows
+    pq.write_table(pa.table({"emb": pa.array([], pa.list_(pa.float64()))}), os.path.join(d, "data", "a.parquet"))
+    x = np.random.default_rng(9).standard_normal((25, 4))
+    pl.DataFrame({"emb": x.tolist()}).write_parquet(os.path.join(d, "data", "b.parquet"))
+    return _config(d, "out", input={"vector_column": "emb"})
+
+
+def b_duckdb_bool_decimal(d):
+    import duckdb
+
+    os.makedirs(os.path.join(d, "data"))
+    con = duckdb.connect()
+    con.execute("SELECT setseed(0.25)")
+    # DuckDB keeps a numeric literal like 12.50 as DECIMAL and writes it as a Parquet decimal
+    con.execute(f"""COPY (SELECT random() AS a, random() * 2 AS b, random() > 0.5 AS flag,
+                           CAST(round(random() * 100, 2) AS DECIMAL(10, 2)) AS price, 'x' || i AS label
+                    FROM range(40) t(i)) TO '{os.path.join(d, "data", "a.parquet")}'""")
+    con.execute(f"""COPY (SELECT random() AS a, random() * 2 AS b, random() > 0.5 AS flag,
+                           CAST(round(random() * 100, 2) AS DECIMAL(10, 2)) AS price, 'y' || i AS label,
+                           random() AS extra
+                    FROM range(30) t(i)) TO '{os.path.join(d, "data", "b.parquet")}'""")
+    con.close()
+    return _config(d, "out", model={"components": 1})
+
+
+def e_left_out(d, setup, outputs):
+    line = [ln for ln in outputs["check"].stdout.splitlines() if ln.startswith("left out")]
+    assert len(line) == 1, outputs["check"].stdout
+    for word in ("4 column(s)", "flag (boolean)", "price (decimal)", "label (string)",
+                 "extra (missing from 1 of 2 files"):
+        assert word in line[0], (word, line[0])
+    assert "features    2: a, b" in outputs["check"].stdout
+    assert "flag (boolean)" in outputs["run"].stderr  # the log says it too (info level)
+    assert _manifest(setup.output)["features"] == 2
+
+
+def b_pandas_filtered_index(d):
+    import pandas as pd
+
+    x = np.random.default_rng(10).standard_normal((50, 3))
+    frame = pd.DataFrame(x, columns=["a", "b", "c"])
+    os.makedirs(os.path.join(d, "data"))
+    frame[frame["a"] > -1].to_parquet(os.path.join(d, "data", "f.parquet"))  # keeps the index as a column
+    return _config(d, "out")
+
+
+# ----------------------------------------------------------------- 16. guard rails
+
+def b_row_id_increasing(d):
+    import polars as pl
+
+    x = np.random.default_rng(11).standard_normal((90, 3))
+    os.makedirs(os.path.join(d, "data"))
+    pl.DataFrame({"row": np.arange(90), "a": x[:, 0], "b": x[:, 1], "c": x[:, 2]}).write_parquet(
+        os.path.join(d, "data", "p.parquet"), row_group_size=30)
+    return _config(d, "out")
+
+
+def b_row_id_shuffled(d):
+    rng = np.random.default_rng(12)
+    x = rng.standard_normal((64, 3))
+    os.makedirs(os.path.join(d, "data"))
+    # one row group, ids 1..64 in random order: only the moments can tell they are distinct
+    pq.write_table(pa.table({"id": rng.permutation(64) + 1, "a": x[:, 0], "b": x[:, 1], "c": x[:, 2]}),
+                   os.path.join(d, "data", "p.parquet"))
+    return _config(d, "out")
+
+
+def _warned(words, in_check):
+    """One guard-rail warning in the run's log and manifest; ``in_check``: the words check must say, or ()."""
+    def expect(d, setup, outputs):
+        report = [ln for ln in outputs["check"].stdout.splitlines() if ln.startswith("warning")]
+        assert (len(report) == 1 and all(w in report[0] for w in in_check)) if in_check else report == [], report
+        warnings = _manifest(setup.output)["warnings"]
+        assert len(warnings) == 1 and all(w in warnings[0] for w in words), warnings
+        assert warnings[0] in outputs["run"].stderr
+    return expect
+
+
+def b_dominant_feature(d):
+    x = np.random.default_rng(13).standard_normal((80, 4)) * [1.0, 1.0, 1.0, 40.0]  # e.g. grams next to kilograms
+    write_parquet(os.path.join(d, "data"), x)
+    return _config(d, "out")
+
+
+def e_dominant(d, setup, outputs):
+    x = pq.read_table(os.path.join(d, "data")).to_pandas().to_numpy()
+    var = x.var(axis=0, ddof=1)  # numpy, outside pcapipe
+    _warned(("'f3'", f"holds {var[3] / var.sum():.0%} of the total variance", "model.scale = true"),
+            in_check=("'f3' holds", "squared value ranges"))(d, setup, outputs)
+
+
 CASES = [
     # output = the input directory, overwrite = true: used to delete the inputs and exit 0
     ("out-is-input-dir", Case(b_out_is_input_dir, 2, ("output.directory", "is the input path",
@@ -322,6 +462,40 @@ CASES = [
     ("duckdb-hardlink", Case(b_duckdb_hardlink, 0, expect=_rows_are(80, duplicates=1))),
     # pandas' default to_parquet (a RangeIndex is kept as metadata, not as a column)
     ("pandas-default", Case(b_pandas_default, 0, expect=_rows_are(30))),
+    # 4. a keep column named like a score column: the scores could not be read back
+    ("keep-named-PC1", Case(_keep_named("PC1"), 2, ("input.keep", "'PC1'", "PC1..PC2", "leave it out"))),
+    # a fraction of the variance: any PC<i> may be written
+    ("keep-named-PC9-fraction", Case(_keep_named("PC9", 0.9), 2, ("'PC9'", "PC1, PC2, ..."))),
+    # the monitoring columns DESIGN.md adds to the scores
+    ("keep-named-t2_alarm", Case(_keep_named("t2_alarm"), 2, ("'t2_alarm'", "spe_alarm", "rename it"))),
+    # 14. a config saved with a UTF-8 byte-order mark
+    ("config-with-bom", Case(b_config_with_bom, 0, commands=("check",), expect=_check_says("rows        60"))),
+    # a column named "br[0]" matches itself, not "br0"
+    ("feature-named-like-a-glob", Case(b_feature_named_like_a_glob, 0, commands=("check",),
+                                       expect=_check_says("features    2: br[0], br[1]"))),
+    # 15. absurd compute settings are refused with the limit
+    ("workers-absurd", Case(lambda d: (_data(d), _config(d, "out", compute={"workers": 10**18}))[1], 2,
+                            ("compute.workers", "not between 0 and 1024"))),
+    ("memory-1B", Case(lambda d: (_data(d), _config(d, "out", compute={"memory_limit": "1B"}))[1], 2,
+                       ("compute.memory_limit", "below the minimum of 1.0 MiB"))),
+    # 11. a list column whose first file has no rows: the length comes from the next file (polars writes
+    # large_list, pyarrow list)
+    ("vector-first-file-empty", Case(b_vector_first_file_empty, 0,
+                                     expect=_check_says("rows        25",
+                                                        "features    4 from vector column 'emb'"))),
+    # 12. DuckDB's defaults: boolean, decimal and text columns, and a column only the second file has
+    ("duckdb-left-out", Case(b_duckdb_bool_decimal, 0, expect=e_left_out)),
+    # pandas writes a filtered frame's index as __index_level_0__: not a feature
+    ("pandas-index-left-out", Case(b_pandas_filtered_index, 0, commands=("check",),
+                                   expect=_check_says("features    3: a, b, c"))),
+    # 16. an increasing row id among the features: seen in the footers (three row groups)
+    ("row-id-increasing", Case(b_row_id_increasing, 0, expect=_warned(
+        ("'row'", "looks like a row id", "0..89", "input.keep"), in_check=("'row'", "looks like a row id")))),
+    # a shuffled id in one row group: confirmed by the moments of the run
+    ("row-id-shuffled", Case(b_row_id_shuffled, 0, expect=_warned(
+        ("'id'", "1..64", "distinct by the moments"), in_check=("'id'", "may be a row id", "1..64")))),
+    # one feature with most of the variance and scale = false
+    ("dominant-feature", Case(b_dominant_feature, 0, expect=e_dominant)),
 ]
 
 

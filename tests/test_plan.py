@@ -137,6 +137,24 @@ def test_feature_errors(tmp_path, keys, words):
     assert "a.parquet" in str(info.value)
 
 
+@pytest.mark.parametrize("keep, components, clash", [
+    ("PC2", 2, True),      # written as the second score column
+    ("PC3", 2, False),     # not written with k = 2
+    ("PC3", 0.5, True),    # a fraction of the variance may need any k
+    ("pc1", 2, False),     # column names are case-sensitive
+    ("PC01", 2, False),    # not a name pcapipe writes
+    ("spe", 2, True),      # a monitoring column of the scores (DESIGN.md)
+])
+def test_keep_column_named_like_a_score_column(tmp_path, keep, components, clash):
+    path = _write(str(tmp_path / "k.parquet"), **{keep: np.arange(4), "a": np.ones(4), "b": np.arange(4.0) ** 2})
+    cfg = make_config(path, tmp_path / "out", input={"keep": [keep]}, model={"components": components})
+    if clash:
+        with pytest.raises(InputError, match=f"input.keep: column '{keep}' has the name of a column the scores"):
+            make_plan(load_config(cfg))
+    else:
+        assert make_plan(load_config(cfg)).keep == (keep,)
+
+
 # ------------------------------------------------------------ blocks and files
 
 def test_blocks_are_row_groups(tmp_path):
