@@ -71,8 +71,8 @@ def prepare(config, overrides=()) -> Prepared:
     cfg = config if isinstance(config, Config) else load_config(config, overrides)
     writer = RunWriter(resolve_path(cfg, cfg.output.directory), cfg.output.overwrite)
     # the output must not overlap the inputs or the config (checked before a byte is read)
-    writer.check_overlap([resolve_path(cfg, p) for p in cfg.input.paths],
-                         cfg.source if os.path.isfile(cfg.source) else None)
+    read = [*cfg.input.paths, *([cfg.model.feature_weights] if cfg.model.feature_weights else [])]
+    writer.check_overlap([resolve_path(cfg, p) for p in read], cfg.source if os.path.isfile(cfg.source) else None)
     writer.check()
     plan = make_plan(cfg)
     writer.check_inputs([f.path for f in plan.files])

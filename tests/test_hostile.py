@@ -142,6 +142,20 @@ def b_out_holds_input_via_symlink(d):
     return _config(d, "prev", paths=["data/*.parquet"], output={"overwrite": True})
 
 
+def b_out_is_input_file(d):
+    _data(d)
+    return _config(d, "data/part-000.parquet", paths=["data/part-000.parquet"], output={"overwrite": True})
+
+
+def b_out_holds_feature_weights(d):
+    # the feature weight table is an input too
+    _data(d)
+    os.makedirs(os.path.join(d, "tables"))
+    pq.write_table(pa.table({"feature": [f"f{i}" for i in range(4)], "weight": [1.0, 2.0, 1.0, 0.5]}),
+                   os.path.join(d, "tables", "w.parquet"))
+    return _config(d, "tables", model={"feature_weights": "tables/w.parquet"}, output={"overwrite": True})
+
+
 def b_overwrite_foreign_dir(d):
     _data(d)
     os.makedirs(os.path.join(d, "out", "sub"))
@@ -240,6 +254,26 @@ def b_spark_directory(d):
 
 def b_spark_glob(d):
     return _spark_table(d, glob_pattern=True)
+
+
+def b_spark_failed_job(d):
+    # every part file is still under _temporary/: the job never committed
+    setup = _spark_table(d)
+    for name in os.listdir(os.path.join(d, "table")):
+        if name.startswith("part-"):
+            os.unlink(os.path.join(d, "table", name))
+    return setup
+
+
+def b_polars_truncated(d):
+    import polars as pl
+
+    os.makedirs(os.path.join(d, "data"))
+    path = os.path.join(d, "data", "p.parquet")
+    pl.DataFrame({"a": np.arange(50.0), "b": np.arange(50.0) ** 0.5}).write_parquet(path)
+    with open(path, "r+b") as f:
+        f.truncate(os.path.getsize(path) // 2)  # a copy cut short
+    return _config(d, "out")
 
 
 def b_polars_symlink(d):
@@ -418,6 +452,8 @@ CASES = [
     # output = the input directory, overwrite = true: used to delete the inputs and exit 0
     ("out-is-input-dir", Case(b_out_is_input_dir, 2, ("output.directory", "is the input path",
                                                       "outside every input path"))),
+    # output = the one input file
+    ("out-is-input-file", Case(b_out_is_input_file, 2, ("is the input path", "part-000.parquet"))),
     # output = "." (the config's directory, holding data/ and the config)
     ("out-is-dot", Case(b_out_is_dot, 2, ("output.directory", "contains the input path", "data"))),
     # output = a parent of the inputs and of the config
@@ -434,6 +470,8 @@ CASES = [
     # an input file is a symlink into the previous run that overwrite would replace
     ("out-holds-input-via-symlink", Case(b_out_holds_input_via_symlink, 2,
                                          ("contains the input file", "s.parquet"))),
+    # output = the directory of model.feature_weights' table
+    ("out-holds-feature-weights", Case(b_out_holds_feature_weights, 2, ("contains the input path", "w.parquet"))),
     # overwrite = true over a directory that is not a pcapipe run: say what is there
     ("overwrite-foreign-dir", Case(b_overwrite_foreign_dir, 2, ("not a pcapipe run", "notes.txt", "sub/",
                                                                 "choose another output.directory"))),
@@ -456,6 +494,11 @@ CASES = [
     ("spark-directory", Case(b_spark_directory, 0, expect=_rows_are(94, skipped=1))),
     # the same table through a recursive glob
     ("spark-glob", Case(b_spark_glob, 0, expect=_rows_are(94, skipped=1))),
+    # a Spark job that never committed: only _temporary/ holds part files, and the error says so
+    ("spark-failed-job", Case(b_spark_failed_job, 2, ("input.paths", "'table' matches no file",
+                                                      "1 file(s) under names starting with _ or . were skipped"))),
+    # a truncated polars file: named, nothing written, the file left as it was
+    ("polars-truncated", Case(b_polars_truncated, 2, ("p.parquet", "not a readable Parquet file"))),
     # 3. polars' default file and a symlink to it in the same directory: read once
     ("polars-symlink", Case(b_polars_symlink, 0, expect=_rows_are(70, duplicates=1))),
     # DuckDB COPY ... TO, hardlinked below the same directory and also named directly: read once
