@@ -291,6 +291,8 @@ class RunWriter:
             os.rmdir(old)
             os.replace(self.directory, old)
         os.replace(self.partial, self.directory)
-        if old:
+        if old and os.path.islink(old):
+            os.unlink(old)  # the output was a link to a run: replace the link, keep what it pointed to
+        elif old:
             shutil.rmtree(old, ignore_errors=True)
         return self.directory

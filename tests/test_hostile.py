@@ -184,6 +184,14 @@ def b_overwrite_previous_run(d):
     return _config(d, "prev", model={"components": 1}, output={"overwrite": True})
 
 
+def b_overwrite_symlink_to_run(d):
+    # "latest" points at an earlier run: overwrite replaces the link, the earlier run stays
+    _previous_run(d, components=2)
+    os.symlink("prev", os.path.join(d, "latest"))
+    _data(d)
+    return _config(d, "latest", model={"components": 1}, output={"overwrite": True})
+
+
 def e_replaced(d, setup, outputs):
     m = _manifest(setup.output)
     assert m["components"] == 1 and m["inputs"][0]["path"].startswith(os.path.join(d, "data"))
@@ -483,6 +491,8 @@ CASES = [
                                                                         "output.overwrite = true"))),
     # overwrite = true over a finished pcapipe run: replaced (check writes nothing)
     ("overwrite-previous-run", Case(b_overwrite_previous_run, 0, expect=e_replaced)),
+    # overwrite = true where the output is a symlink to a finished run: the link is replaced
+    ("overwrite-symlink-to-run", Case(b_overwrite_symlink_to_run, 0, expect=e_replaced)),
     # a bad config over a previous run with overwrite = true: the previous run stays intact
     ("bad-config-over-previous-run", Case(b_bad_config_over_previous_run, 2, ("model.components", "at most"))),
     # 7. a plain file where the .incomplete sibling goes
