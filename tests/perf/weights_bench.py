@@ -20,6 +20,7 @@ import json
 import os
 import sys
 import tempfile
+import time
 
 import numpy as np
 import pyarrow as pa
@@ -99,7 +100,8 @@ def main(argv=None) -> int:
                     return 1
                 with open(os.path.join(out, "manifest.json")) as f:
                     man = json.load(f)
-                row = {"wall": res.wall_seconds, "rss": res.peak_rss_mb, "passes": man["passes_over_data"],
+                row = {"wall": res.wall_seconds, "cpu": res.cpu_seconds, "rss": res.peak_rss_mb,
+                       "passes": man["passes_over_data"],
                        "moments": man["timings"].get("moments_seconds", float("nan")),
                        "others": res.others_cores}
                 key = (method, variant)
@@ -109,13 +111,56 @@ def main(argv=None) -> int:
                       f"{row['rss']:.0f} MB, {row['passes']} passes", file=sys.stderr)
     print(f"\n{args.rows} rows x {args.features} features, {args.repeats} repeats (fastest shown), "
           f"threads scheduler, scores off\n")
-    print("| method | weights | passes | wall s | ratio | moments pass s | ratio | peak RSS MB | other load (cores) |")
-    print("|---|---|---:|---:|---:|---:|---:|---:|---:|")
+    print("| method | weights | passes | wall s | ratio | CPU s | ratio | moments pass s | ratio | peak RSS MB "
+          "| other load (cores) |")
+    print("|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|")
     for (method, variant), r in best.items():
         base = best[(method, "unweighted")]
         print(f"| {method} | {variant} | {r['passes']} | {r['wall']:.2f} | {r['wall'] / base['wall']:.3f} | "
+              f"{r['cpu']:.2f} | {r['cpu'] / base['cpu']:.3f} | "
               f"{r['moments']:.2f} | {r['moments'] / base['moments']:.3f} | {r['rss']:.0f} | {r['others']:.2f} |")
+    _kernels(args.features)
     return 0
+
+
+def _kernels(d: int, rows: int = 50_000, reps: int = 30) -> None:
+    """The per-batch kernels alone, in this process, least CPU time of ``reps``: the pure cost of the weights.
+
+    One BLAS thread, as inside a task of the threads scheduler (tasks.limit_blas);
+    CPU time of this process rather than wall time, which other users of a
+    shared machine inflate; variants interleaved.
+    """
+    from threadpoolctl import threadpool_limits
+
+    from pcapipe.moments import batch_moments
+    from pcapipe.tasks import _product
+
+    threadpool_limits(1, user_api="blas")
+    rng = np.random.default_rng(0)
+    x = np.asfortranarray(rng.standard_normal((rows, d)) + 10.0)
+    w = rng.uniform(0, 3, rows)
+    v = rng.standard_normal((d, 13))
+
+    def cpu(fn) -> float:
+        xc = x.copy(order="F")
+        t = time.process_time()
+        fn(xc)
+        return time.process_time() - t
+
+    pairs = {
+        "moments + Gram (covariance pass)": (lambda a: batch_moments(a, True, "fail"),
+                                             lambda a: batch_moments(a, True, "fail", weights=w)),
+        "moments, diagonal (matrix-free pass 1)": (lambda a: batch_moments(a, False, "fail"),
+                                                   lambda a: batch_moments(a, False, "fail", weights=w)),
+        "product X^T X V (matrix-free)": (lambda a: _product(a, v), lambda a: _product(a, v, w)),
+    }
+    print(f"\nkernels on one {rows} x {d} batch (least CPU time of {reps}, one BLAS thread)\n")
+    print("| kernel | unweighted ms | weighted ms | ratio |")
+    print("|---|---:|---:|---:|")
+    for name, (plain, weighted) in pairs.items():
+        times = [(cpu(plain), cpu(weighted)) for _ in range(reps)]
+        a, b = min(t[0] for t in times), min(t[1] for t in times)
+        print(f"| {name} | {a * 1e3:.2f} | {b * 1e3:.2f} | {b / a:.3f} |")
 
 
 if __name__ == "__main__":
