@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import logging
 import os
 import subprocess
 import sys
@@ -104,6 +105,15 @@ def known_spectrum(n, d, values, rng, mean=0.0):
     q, _ = np.linalg.qr(rng.standard_normal((d, d)))
     z = rng.standard_normal((n, d)) * np.sqrt(values)
     return z @ q.T + mean
+
+
+@pytest.fixture
+def restore_logging():
+    """For tests calling cli.main in this process: it points the pcapipe logger at this test's stderr."""
+    log = logging.getLogger("pcapipe")
+    saved = log.handlers[:], log.level, log.propagate
+    yield
+    log.handlers[:], log.level, log.propagate = saved
 
 
 @pytest.fixture

@@ -150,14 +150,6 @@ def test_several_configs_refuse_one_shared_output_directory(monkeypatch, capsys)
 # main() is called directly so that monkeypatch can reach the engine.
 
 
-@pytest.fixture
-def restore_logging():
-    log = logging.getLogger("pcapipe")
-    saved = log.handlers[:], log.level, log.propagate
-    yield
-    log.handlers[:], log.level, log.propagate = saved
-
-
 def _raising(exc):
     def run(*args, **kwargs):
         raise exc

@@ -137,6 +137,7 @@ def _snapshot(path):
     return sorted((r, tuple(sorted(f))) for r, _, f in os.walk(path)) if os.path.isdir(path) else None
 
 
+@pytest.mark.usefixtures("restore_logging")
 @pytest.mark.parametrize("builder, words", [c[1:] for c in CASES], ids=[c[0] for c in CASES])
 def test_bad_weights_one_error_line_nothing_written(tmp_path, capsys, builder, words):
     d = str(tmp_path)
