@@ -3,7 +3,6 @@ and the exit statuses of unexpected failures (1) and interrupts (130)."""
 
 from __future__ import annotations
 
-import logging
 import os
 
 import numpy as np
