@@ -13,6 +13,11 @@ so ``z`` has unit variance and the correlation matrix of the channels is close
 to ``loading @ loading.T + diag(psi)``: five eigenvalues well above one, then
 a gap.  See ``data_demo/README.md`` for the scenario and the loading pattern.
 
+Three containers develop an invented fault partway through (``FAULTS``): from
+a given step some of their channels drift, linearly over a day, in a way the
+drivers do not explain (a sagging compressor phase, a leaking door seal, a
+worn condenser fan), so monitoring with T^2 and SPE can find them.
+
 Rows are written time step by time step (all 40 containers per step), chunk by
 chunk, through :class:`pyarrow.parquet.ParquetWriter`, so memory stays bounded
 whatever ``--rows`` is.  The random draws happen in chunks of a fixed number of
@@ -41,7 +46,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from scipy.signal import lfilter
 
-__all__ = ["DRIVERS", "Channel", "CHANNELS", "build_schema", "write_dataset", "main"]
+__all__ = ["DRIVERS", "Channel", "CHANNELS", "Fault", "FAULTS", "build_schema", "write_dataset", "main"]
 
 logger = logging.getLogger("pcapipe")
 
@@ -116,6 +121,39 @@ CHANNELS = (
     _ch("defrost_heater_amp", "A", 2.5, 2.5, 0.05, defrost=0.99),
 )
 
+
+
+@dataclass(frozen=True)
+class Fault:
+    """An invented fault: from ``start_step`` one container's channels drift away from the model.
+
+    ``shifts`` maps channel names to the drift reached after ``ramp_steps``,
+    in standard units of the channel; the drift grows linearly until then.
+    The shifts break the usual co-movement of the channels (the drivers do
+    not explain them), so the rows leave the model plane: the SPE rises.
+    """
+
+    container: int          # 1-based: RC-007 is 7
+    kind: str
+    start_step: int
+    ramp_steps: int
+    shifts: tuple[tuple[str, float], ...]
+
+
+# Three containers go wrong partway through the bundled ten days (3000 steps).
+FAULTS = (
+    # a failing compressor: one phase's current sags, the other two and the discharge temperature rise
+    Fault(7, "failing compressor (phase B winding)", 1500, 288,
+          (("compressor_amp_b", -3.0), ("compressor_amp_a", 1.0), ("compressor_amp_c", 1.0),
+           ("discharge_temp", 2.0))),
+    # a leaking door seal: humid outside air gets in, humidity rises while CO2 falls
+    Fault(23, "leaking door seal", 2000, 288,
+          (("door_seal_humidity", 3.5), ("cargo_humidity", 2.0), ("co2_ppm", -1.0), ("return_air_temp", 1.0))),
+    # a condenser fan wearing out: less current, hotter condenser and higher head pressure
+    Fault(31, "condenser fan wearing out", 2400, 288,
+          (("condenser_fan_amp", -3.0), ("condenser_temp", 1.5), ("discharge_pressure", 1.5))),
+)
+
 _LOADINGS = np.array([c.loadings for c in CHANNELS])
 _NOISE_SD = np.sqrt(1.0 - (_LOADINGS**2).sum(axis=1))
 _OFFSET = np.array([c.offset for c in CHANNELS])
@@ -133,7 +171,10 @@ def build_schema(seed: int) -> pa.Schema:
         pa.field("voyage", pa.int16(), nullable=False),
     ]
     fields += [pa.field(c.name, pa.float64(), nullable=False, metadata={"unit": c.unit}) for c in CHANNELS]
-    about = {"generator": "data_demo/make_demo.py", "seed": seed, "drivers": list(DRIVERS), "invented": True}
+    faults = [{"container": f"RC-{f.container:03d}", "kind": f.kind, "start_step": f.start_step,
+               "ramp_steps": f.ramp_steps, "channels": [n for n, _ in f.shifts]} for f in FAULTS]
+    about = {"generator": "data_demo/make_demo.py", "seed": seed, "drivers": list(DRIVERS), "invented": True,
+             "faults": faults}
     return pa.schema(fields, metadata={"pcapipe.demo": json.dumps(about)})
 
 
@@ -216,6 +257,7 @@ class _Fleet:
         drivers = self._drivers(steps, level)
         noise = self._rng.standard_normal((n, N_CONTAINERS, len(CHANNELS)))
         z = drivers @ _LOADINGS.T + noise * _NOISE_SD
+        _apply_faults(z, steps)
         x = np.round((_OFFSET + _SCALE * z) / _RESOLUTION) * _RESOLUTION
         x = x.reshape(-1, len(CHANNELS))
         ts = START_MS + steps[:, None] * (INTERVAL_S * 1000) + self._clock_ms
@@ -226,6 +268,19 @@ class _Fleet:
         ]
         arrays += [pa.array(np.round(x[:, j], d)) for j, d in enumerate(_DECIMALS)]
         return pa.Table.from_arrays(arrays, schema=self._schema)
+
+
+def _apply_faults(z: np.ndarray, steps: np.ndarray) -> None:
+    """Add each fault's drift to its container's rows (z: steps x containers x channels, in place).
+
+    The drift depends only on the step number, never on random draws, so the
+    rest of the data is the same with or without faults.
+    """
+    names = [c.name for c in CHANNELS]
+    for f in FAULTS:
+        ramp = np.clip((steps - f.start_step + 1) / f.ramp_steps, 0.0, 1.0)
+        for name, shift in f.shifts:
+            z[:, f.container - 1, names.index(name)] += ramp * shift
 
 
 class _RowStream:

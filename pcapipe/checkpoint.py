@@ -131,9 +131,14 @@ class Checkpoint:
     def solution(self) -> dict:
         return _load_npz(os.path.join(self.dir, "solution.npz"))
 
+    def probe(self) -> dict | None:
+        """The solver's first block and its image (the matrix-free theta_2 estimate), if saved."""
+        path = os.path.join(self.dir, "probe.npz")
+        return _load_npz(path) if os.path.isfile(path) else None
+
     # -- writing -------------------------------------------------------------
     def save(self, stage: str, *, moments: Moments | None = None, solver: SolverState | None = None,
-             solution: dict | None = None, **info) -> None:
+             solution: dict | None = None, probe: dict | None = None, **info) -> None:
         """Save the arrays given, then ``state.json`` (last, by rename)."""
         os.makedirs(self.dir, exist_ok=True)
         if moments is not None:
@@ -148,6 +153,8 @@ class Checkpoint:
             _save_npz(os.path.join(self.dir, "solver.npz"), solver.arrays())
         if solution is not None:
             _save_npz(os.path.join(self.dir, "solution.npz"), solution)
+        if probe is not None and not os.path.isfile(os.path.join(self.dir, "probe.npz")):
+            _save_npz(os.path.join(self.dir, "probe.npz"), probe)
         self.state.update(info)
         self.state.update({"version": _VERSION, "stage": stage, "identity": self.identity})
         write_json_atomic(os.path.join(self.dir, "state.json"), self.state)

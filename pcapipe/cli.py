@@ -53,10 +53,14 @@ def build_parser() -> argparse.ArgumentParser:
     pr.add_argument("run_dir", metavar="RUN_DIR")
     pr.add_argument("inputs", nargs="+", metavar="INPUT")
     pr.add_argument("--out", required=True, metavar="DIR", help="directory for part-NNNNN.parquet")
+    pr.add_argument("--explain", type=int, default=0, metavar="N",
+                    help="list the N rows farthest beyond the control limits with their top features")
 
     rp = sub.add_parser("report", parents=[common], help="build report.html and figures for a run")
     rp.add_argument("run_dir", metavar="RUN_DIR")
     rp.add_argument("--color-by", default=None, metavar="COLUMN", help="keep column colouring the scatter")
+    rp.add_argument("--time", default=None, metavar="COLUMN",
+                    help="keep column for the control chart's x-axis (default: monitor.time, else row order)")
     return p
 
 
@@ -154,6 +158,13 @@ def _cmd_project(args) -> int:
     res = load(args.run_dir)
     written = project_to_directory(res, args.inputs, args.out)
     print(f"wrote {len(written)} part file(s) to {args.out}")
+    if res.manifest.get("limits"):
+        from .alarms import count_alarms
+        from .terminal_monitor import alarm_line, explain_text
+
+        print(alarm_line(count_alarms(written), res.limits))
+        if args.explain > 0:
+            print(explain_text(res, written, args.inputs, args.explain))
     return 0
 
 
@@ -162,7 +173,7 @@ def _cmd_report(args) -> int:
     from .result import load
 
     res = load(args.run_dir)
-    path = write_report(res, color_by=args.color_by)
+    path = write_report(res, color_by=args.color_by, time=args.time)
     print(f"wrote {path}")
     return 0
 

@@ -25,7 +25,7 @@ from typing import Any, Callable, NoReturn
 from pcapipe.errors import ConfigError
 
 __all__ = [
-    "InputConfig", "ModelConfig", "ComputeConfig", "OutputConfig", "Config",
+    "InputConfig", "ModelConfig", "ComputeConfig", "OutputConfig", "MonitorConfig", "Config",
     "SECTIONS", "CHOICES", "SCHEDULERS", "MEMORY_UNITS",
     "load_config", "parse_memory", "format_size", "config_to_dict", "resolve_path",
 ]
@@ -83,6 +83,14 @@ class OutputConfig:
 
 
 @dataclasses.dataclass(frozen=True)
+class MonitorConfig:
+    """``[monitor]``: control limits for T^2 and SPE (see :mod:`pcapipe.limits`)."""
+
+    confidence: float = 0.99          # in (0, 1)
+    time: str = ""                    # a keep column: the x-axis of the control chart
+
+
+@dataclasses.dataclass(frozen=True)
 class Config:
     """A validated configuration; see :func:`resolve_path` for ``base_dir``."""
 
@@ -90,13 +98,14 @@ class Config:
     model: ModelConfig
     compute: ComputeConfig
     output: OutputConfig
+    monitor: MonitorConfig
     base_dir: str   # absolute: the config file's directory, or the cwd for a mapping
     source: str     # the config file's absolute path, or "<dict>"
 
 
 SECTIONS: dict[str, type] = {
     "input": InputConfig, "model": ModelConfig,
-    "compute": ComputeConfig, "output": OutputConfig,
+    "compute": ComputeConfig, "output": OutputConfig, "monitor": MonitorConfig,
 }
 CHOICES: dict[str, tuple[str, ...]] = {
     "input.missing": ("fail", "drop-rows", "impute-mean"),
@@ -123,6 +132,7 @@ _LIMITS: dict[str, tuple[Callable[[Any], bool], str]] = {
                         f"is not between 0 and {MAX_WORKERS}; 0 means one per core"),
     "compute.connect_timeout": (lambda v: 0.0 < v < math.inf,
                                 "is not a positive, finite number of seconds"),
+    "monitor.confidence": (lambda v: 0.0 < v < 1.0, "is not strictly between 0 and 1"),
     # An empty directory would resolve to the config's own directory.
     "output.directory": (bool, "is empty"),
 }
@@ -132,6 +142,7 @@ _EXAMPLES: dict[str, Any] = {
     "input.exclude": ["ch_bad"], "input.keep": ["id"],
     "input.vector_column": "embedding", "compute.memory_limit": "4GiB",
     "input.row_weight": "weight", "model.feature_weights": "feature_weights.csv",
+    "monitor.time": "timestamp",
 }
 # Notebook users pass pathlib objects for these; anywhere else it is a mistake.
 _PATH_KEYS = frozenset({"input.paths", "output.directory", "model.feature_weights"})
@@ -354,6 +365,10 @@ def _validate(ctx: _Context, raw: Mapping[str, Any]) -> dict[str, Any]:
         ctx.fail("input.row_weight",
                  f"{_show(inp.row_weight)} is also input.vector_column; the row weights "
                  "need a numeric column of their own")
+    mon = built["monitor"]
+    if mon.time and mon.time not in inp.keep:
+        ctx.fail("monitor.time", f"{_show(mon.time)} is not a keep column; add it to input.keep "
+                                 f"(now {_show(list(inp.keep))}) or leave monitor.time empty")
     return built
 
 
@@ -489,7 +504,7 @@ def parse_memory(text: str) -> int | None:
 
 
 def config_to_dict(cfg: Config) -> dict[str, dict[str, Any]]:
-    """The four sections as a JSON-able dict that :func:`load_config` accepts back."""
+    """The sections as a JSON-able dict that :func:`load_config` accepts back."""
     return {
         name: {key: list(v) if isinstance(v, tuple) else v
                for key in _fields(name) for v in [getattr(getattr(cfg, name), key)]}

@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._version import __version__
+from .alarms import FirstBlock, count_alarms, every_eigenvalue, fit_limits, monitor_spec
 from .compute import Runner, _cores
 from .config import Config, load_config, resolve_path
 from .checkpoint import Checkpoint, job_identity
@@ -268,15 +269,22 @@ class _Job:
         res, trace, cache = self._solve(passes, choice, m, transform, scale_used)
         vectors = _orient(res.vectors)
         t = time.perf_counter()
-        score_rows = None
+        limits = fit_limits(choice.method, p.cfg.monitor.confidence, m.total, trace, res.values, vectors,
+                            matrix=getattr(self.op, "matrix", None), all_values=every_eigenvalue(res, trace),
+                            probe=self.probe)
+        self.timings["limits_seconds"] = time.perf_counter() - t
+        t = time.perf_counter()
+        score_rows, alarms = None, None
         if p.cfg.output.scores:
             score_rows = passes.scores(transform, vectors, component_names(vectors.shape[1]),
-                                       p.writer.path("scores"))
+                                       p.writer.path("scores"), monitor_spec(limits, res.values, training=True))
+            alarms = count_alarms(p.writer.path("scores"))
         self.timings["scores_seconds"] = time.perf_counter() - t
         self.timings["total_seconds"] = sum(v for k, v in self.timings.items() if k != "total_seconds")
         for name, table in build_tables(p.plan, m, res, vectors, std, scale_used, trace).items():
             p.writer.write_table(name, table)
-        extra = {"resumed": self.state.get("resumes", []), "warnings": warned}
+        extra = {"resumed": self.state.get("resumes", []), "warnings": warned, "limits": limits,
+                 "monitor": {"time": p.cfg.monitor.time, "training_alarms": alarms}}
         manifest = manifest_for(p, m, res, choice, trace, passes.count, cache, info, self.timings,
                                 score_rows, version=__version__, extra=extra)
         if p.cfg.output.report:
@@ -325,6 +333,7 @@ class _Job:
             op = MatrixFreeOperator(lambda v: passes.product(transform, v), m.total,
                                     _trace(m, p.cfg.model.center, scale, fw), d)
             cache = None
+        self.op, self.probe = op, None
         if self.state.get("stage") == "solved":
             return self._solution(), op.trace, self.state.get("cache", cache)
         if cache is None:
@@ -348,14 +357,18 @@ class _Job:
             resume_state = self.ckpt.solver_state()
             rng.bit_generator.state = self.state["rng"]
 
+        # the matrix-free SPE limit needs the solver's random first block (no extra pass)
+        first = FirstBlock(op) if choice.method == "matrix-free" and resume_state is None else None
+
         def checkpoint(solver):
             if choice.method == "matrix-free":
                 self.state["rng"] = solver.rng.bit_generator.state
-                self._save("solver", choice, passes, solver=solver.state)
+                self._save("solver", choice, passes, solver=solver.state, probe=first and first.probe())
 
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            res = _solve(p, op, rng, depth, callback=checkpoint, state=resume_state)
+            res = _solve(p, first or op, rng, depth, callback=checkpoint, state=resume_state)
+        self.probe = first.probe() if first is not None else self.ckpt.probe()
         for w in caught:
             log.warning("%s", w.message)
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
@@ -363,6 +376,7 @@ class _Job:
 
     def _solution(self) -> SolverResult:
         a = self.ckpt.solution()
+        self.probe = self.ckpt.probe()
         return SolverResult(a["values"], a["vectors"], a["residual_norms"], a["converged"], a["gaps"],
                             int(a["iterations"]), int(a["matvecs"]), a["history"], int(a["depth"]),
                             int(a["block"]))

@@ -112,17 +112,22 @@ class DataPasses:
         (out,) = self.runner.compute([tree_reduce(parts, tasks.add, name)], "product")
         return out
 
-    def scores(self, transform: tasks.Transform, loadings: np.ndarray, names, out_dir: str) -> list[int]:
-        """One pass, one task per input file: writes ``out_dir/part-NNNNN.parquet``."""
+    def scores(self, transform: tasks.Transform, loadings: np.ndarray, names, out_dir: str,
+               monitor=None) -> list[int]:
+        """One pass, one task per input file: writes ``out_dir/part-NNNNN.parquet``.
+
+        ``monitor`` (a :class:`~pcapipe.monitor.MonitorSpec`) adds the t2, spe
+        and alarm columns.
+        """
         bt = self.runner.blas_threads()
-        name = self._name("scores", transform, loadings, out_dir)
+        name = self._name("scores", transform, loadings, out_dir, monitor)
         os.makedirs(out_dir, exist_ok=True)
         objs = []
         for fi, f in enumerate(self.plan.files):
             groups = [rg for rg, n in enumerate(f.row_group_rows) if n]
             out = os.path.join(out_dir, f"part-{fi:05d}.parquet")
             objs.append(delayed(tasks.scores_task, pure=True)(f.path, groups, self.spec, transform, loadings,
-                                                              tuple(names), out, bt,
+                                                              tuple(names), out, bt, monitor,
                                                               dask_key_name=f"{name}-{fi}"))
         self._announce("scores", len(objs), "files")
         rows = self.runner.compute(objs, "scores")

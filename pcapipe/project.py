@@ -20,7 +20,8 @@ import pyarrow.parquet as pq
 from .errors import InputError, OutputError
 from .plan import resolve_inputs
 from .reader import ReadSpec, batch_rows_for, batch_to_array
-from .tasks import Transform, score_rows
+from .monitor import STAT_COLUMNS, MonitorSpec
+from .tasks import Transform, score_columns
 from .weighted import input_scale
 
 __all__ = ["Projector", "projector_for", "project_frame", "project_paths", "project_to_directory"]
@@ -37,6 +38,7 @@ class Projector:
     transform: Transform
     loadings: np.ndarray
     names: tuple[str, ...]
+    monitor: MonitorSpec | None = None  # None for a run written before control limits existed
 
 
 def projector_for(result) -> Projector:
@@ -56,8 +58,13 @@ def projector_for(result) -> Projector:
     # impute-mean puts the mean in place of a gap; after centring that is 0, without centring it is not
     fill = (f["mean"].to_numpy() - shift) * (inv if inv is not None else 1.0)
     transform = Transform(shift, inv, _MISSING[cfg_in.get("missing", "fail")], fill)
+    monitor = None
+    if m.get("limits"):
+        from .alarms import monitor_spec
+
+        monitor = monitor_spec(m["limits"], result._retained()["eigenvalue"].to_numpy(), training=False)
     return Projector(spec, transform, np.ascontiguousarray(result.loadings.to_numpy()),
-                     tuple(result.loadings.columns))
+                     tuple(result.loadings.columns), monitor)
 
 
 def _is_numeric(t: pa.DataType) -> bool:
@@ -83,12 +90,12 @@ def _check_schema(pr: Projector, schema: pa.Schema, where: str) -> None:
             raise InputError(f"{where}: column {name!r} has type {t}; the run needs {need} there")
 
 
-def _scores_of(pr: Projector, batch, where: str) -> np.ndarray:
-    """Scores of one batch; rows dropped for missing values get NaN (row i stays row i)."""
+def _scores_of(pr: Projector, batch, where: str) -> tuple[np.ndarray, dict]:
+    """Scores of one batch and the monitoring columns; rows dropped for missing values get NaN."""
     t = pr.transform
     x = batch_to_array(batch, pr.spec, where, t.shift, t.inv_scale)
     try:
-        return score_rows(x, t, pr.loadings)
+        return score_columns(x, t, pr.loadings, pr.monitor)
     except ValueError as e:
         j = e.args[0]
         col = pr.spec.columns[0] if pr.spec.vector_column else pr.spec.columns[j]
@@ -116,15 +123,19 @@ def project_frame(result, df: pd.DataFrame, keep=None) -> pd.DataFrame:
         raise InputError(f"project: the feature columns cannot be read as numbers ({e})") from e
     _check_schema(pr, table.schema, "project")
     keep = _keep_for(pr, list(df.columns), keep)
-    s = _scores_of(pr, table, "project")
+    s, extra = _scores_of(pr, table, "project")
     out = pd.DataFrame(s, index=df.index, columns=list(pr.names))
+    for name, values in extra.items():
+        out[name] = values
     for name in reversed(keep):
         out.insert(0, name, df[name])
     return out
 
 
 def _out_schema(pr: Projector, schema: pa.Schema, keep) -> pa.Schema:
-    return pa.schema([*(schema.field(c) for c in keep), *(pa.field(n, pa.float64()) for n in pr.names)])
+    stats = [pa.field(c, pa.bool_() if c.endswith("_alarm") else pa.float64())
+             for c in (STAT_COLUMNS if pr.monitor is not None else ())]
+    return pa.schema([*(schema.field(c) for c in keep), *(pa.field(n, pa.float64()) for n in pr.names), *stats])
 
 
 def _iter_tables(pr: Projector, path: str, keep):
@@ -134,8 +145,9 @@ def _iter_tables(pr: Projector, path: str, keep):
     cols = list(dict.fromkeys([*pr.spec.columns, *keep]))
     try:
         for batch in pf.iter_batches(batch_size=pr.spec.batch_rows, columns=cols, use_threads=False):
-            s = _scores_of(pr, batch, path)
+            s, extra = _scores_of(pr, batch, path)
             arrays = [batch.column(c) for c in keep] + [pa.array(s[:, j]) for j in range(s.shape[1])]
+            arrays += [pa.array(v) for v in extra.values()]
             yield pa.Table.from_arrays(arrays, schema=out_schema)
     except pa.ArrowException as e:
         raise InputError(f"{path}: cannot be decoded ({e}); the file may be truncated, re-copy it") from e

@@ -195,7 +195,7 @@ def _spectrum_table(spectrum: pd.DataFrame) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
 
 
-def _page(title: str, manifest: dict, components: pd.DataFrame, images, notes) -> str:
+def _page(title: str, manifest: dict, components: pd.DataFrame, images, notes, monitor_html: str = "") -> str:
     summary = "".join(f"<tr><th>{html.escape(k)}</th><td>{html.escape(v)}</td></tr>"
                       for k, v in summary_rows(manifest))
     figures = []
@@ -212,6 +212,7 @@ def _page(title: str, manifest: dict, components: pd.DataFrame, images, notes) -
             f"<p>{manifest.get('rows')} rows \u00d7 {manifest.get('features')} features, "
             f"{manifest.get('components')} components, method {html.escape(str(manifest.get('method')))}</p>"
             f"{state}<h2>Spectrum</h2>{_spectrum_table(components)}<h2>Figures</h2>{''.join(figures)}"
+            + (f"<h2>Monitoring</h2>{monitor_html}" if monitor_html else "")
             + (f'<ul class="notes">{note_list}</ul>' if notes else "")
             + f"<h2>Run</h2><table>{summary}</table></body></html>\n")
 
@@ -228,7 +229,7 @@ def _title(directory: str) -> str:
     return os.path.basename(final if partial_dir_for(final) == os.path.normpath(directory) else directory)
 
 
-def build_report(directory: str, manifest: dict, color_by: str | None = None) -> dict:
+def build_report(directory: str, manifest: dict, color_by: str | None = None, time: str | None = None) -> dict:
     """Write ``report.html`` and one PNG per figure into ``directory``; return the manifest's "report" record.
 
     Parameters
@@ -240,6 +241,8 @@ def build_report(directory: str, manifest: dict, color_by: str | None = None) ->
         The run's manifest (summary table, residual history, scores record).
     color_by : str, optional
         A keep column colouring the PC1-PC2 scatter.
+    time : str, optional
+        A keep column for the control chart's x-axis (default ``monitor.time``).
 
     Returns
     -------
@@ -262,18 +265,23 @@ def build_report(directory: str, manifest: dict, color_by: str | None = None) ->
         return {"requested": True, "written": False, "note": INSTALL_NOTE}
     from .result import Result
 
+    from .report_monitor import monitor_section
+
     figs, notes = report_figures(directory, manifest, color_by)
+    monitor_figs, monitor_html, monitor_notes = monitor_section(directory, manifest, time)
+    figs.update(monitor_figs)
+    notes += monitor_notes
     images = {name: (png_bytes(fig), caption) for name, (fig, caption) in figs.items()}
     for name, (data, _) in images.items():
         _write_file(directory, f"{name}.png", data)
-    page = _page(_title(directory), manifest, Result(directory, manifest).spectrum, images, notes)
+    page = _page(_title(directory), manifest, Result(directory, manifest).spectrum, images, notes, monitor_html)
     _write_file(directory, "report.html", page.encode("utf-8"))
     log.debug("wrote the report: %s", os.path.join(directory, "report.html"))
     return {"requested": True, "written": True, "files": ["report.html", *(f"{n}.png" for n in images)],
-            "figures": list(images), "notes": notes, "color_by": color_by}
+            "figures": list(images), "notes": notes, "color_by": color_by, "time": time}
 
 
-def write_report(result, color_by: str | None = None) -> str:
+def write_report(result, color_by: str | None = None, time: str | None = None) -> str:
     """Build the report of a finished run and record it in its manifest (``pcapipe report``).
 
     Returns
@@ -288,7 +296,7 @@ def write_report(result, color_by: str | None = None) -> str:
     OutputError
         matplotlib is not installed (the message says how to install it).
     """
-    entry = build_report(result.directory, result.manifest, color_by)
+    entry = build_report(result.directory, result.manifest, color_by, time)
     if not entry["written"]:
         raise OutputError(f"{result.directory}: no report written; {entry['note']}")
     path = os.path.join(result.directory, "manifest.json")

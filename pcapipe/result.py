@@ -203,6 +203,49 @@ class Result:
             return project_frame(self, data, keep)
         return project_paths(self, data, keep)
 
+    # -- monitoring ----------------------------------------------------------
+    @property
+    def limits(self) -> dict:
+        """Control limits at ``monitor.confidence``: ``t2`` (new rows), ``t2_training``, ``spe``,
+        with formulas, references and, for an estimated SPE limit, its precision (:mod:`pcapipe.limits`)."""
+        if not self.manifest.get("limits"):
+            raise RunDirectoryError(f"{self.directory}: this run has no control limits (written by a pcapipe "
+                                    "without monitoring); run the job again")
+        return self.manifest["limits"]
+
+    def monitor(self, data, keep=None):
+        """Scores, ``t2``, ``spe``, ``t2_alarm`` and ``spe_alarm`` of new rows (see :meth:`project`).
+
+        New rows are judged against the T^2 limit for new observations (F
+        distribution) and the SPE limit; Parquet paths are streamed, one dask
+        task per file.
+        """
+        self.limits  # noqa: B018  (raises for a run without limits)
+        return self.project(data, keep)
+
+    def contributions(self, rows) -> pd.DataFrame:
+        """Per-feature contributions to T^2 and SPE (formulas in :mod:`pcapipe.monitor`).
+
+        Parameters
+        ----------
+        rows : pandas.DataFrame, or sequence of int
+            Rows holding the feature columns, or positions (0-based) of
+            training rows in scores order, read back from the run's input files.
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns ``(statistic, feature)``; ``frame["spe"]`` rows sum to the
+            SPE, ``frame["t2"]`` rows to the T^2.
+        """
+        from .explain import contributions_frame, read_rows
+        from .project import projector_for
+
+        if not isinstance(rows, pd.DataFrame):
+            paths = [f["path"] for f in self.manifest["inputs"]]
+            rows = read_rows(paths, np.atleast_1d(np.asarray(rows, dtype=np.int64)), projector_for(self).spec.columns)
+        return contributions_frame(self, rows)
+
     # -- derived tables ------------------------------------------------------
     @cached_property
     def correlation_loadings(self) -> pd.DataFrame:

@@ -17,9 +17,11 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .moments import Moments, batch_moments, tree_merge
+from .monitor import STAT_COLUMNS, MonitorSpec, monitor_columns
 from .reader import ReadSpec, iter_block, iter_file, split_weights
 
-__all__ = ["Transform", "prepare_rows", "score_rows", "moments_task", "product_task", "scores_task", "decode_task",
+__all__ = ["Transform", "prepare_rows", "score_rows", "score_columns", "moments_task", "product_task", "scores_task",
+           "decode_task",
            "product_cached_task", "add", "limit_blas", "probe_task"]
 
 _blas_limit = None
@@ -74,13 +76,20 @@ def prepare_rows(x: np.ndarray, t: Transform) -> tuple[np.ndarray, np.ndarray | 
 
 def score_rows(x: np.ndarray, t: Transform, loadings: np.ndarray) -> np.ndarray:
     """Scores of a transformed batch; dropped rows get NaN, so row i stays row i."""
+    return score_columns(x, t, loadings)[0]
+
+
+def score_columns(x: np.ndarray, t: Transform, loadings: np.ndarray,
+                  monitor: MonitorSpec | None = None) -> tuple[np.ndarray, dict]:
+    """Scores of a transformed batch and, with ``monitor``, its t2/spe/alarm columns (row i stays row i)."""
     x, ok = prepare_rows(x, t)
     s = x @ loadings
+    extra = monitor_columns(s, x, loadings, monitor, ok) if monitor is not None else {}
     if ok is not None:
         full = np.full((ok.size, loadings.shape[1]), np.nan)
         full[ok] = s
         s = full
-    return s
+    return s, extra
 
 
 def moments_task(path: str, row_group: int, spec: ReadSpec, full: bool, missing: str,
@@ -154,7 +163,7 @@ def add(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def scores_task(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: np.ndarray,
-                names, out_path: str, blas_threads: int = 0) -> int:
+                names, out_path: str, blas_threads: int = 0, monitor: MonitorSpec | None = None) -> int:
     """Write the scores of one input file to ``out_path``; returns the rows written.
 
     Keep columns are copied as they are; rows dropped for missing values get
@@ -168,17 +177,19 @@ def scores_task(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: n
     rows = 0
     try:
         for xb, keep in iter_file(path, row_groups, spec, t.shift, t.inv_scale, with_keep=True):
-            s = score_rows(split_weights(xb, spec)[0], t, loadings)
+            s, extra = score_columns(split_weights(xb, spec)[0], t, loadings, monitor)
             arrays = list(keep.columns) if keep is not None else []
             labels = list(keep.schema.names) if keep is not None else []
-            arrays += [pa.array(s[:, j]) for j in range(s.shape[1])]
-            table = pa.Table.from_arrays(arrays, names=labels + list(names))
+            arrays += [pa.array(s[:, j]) for j in range(s.shape[1])] + [pa.array(v) for v in extra.values()]
+            table = pa.Table.from_arrays(arrays, names=labels + list(names) + list(extra))
             if writer is None:
                 writer = pq.ParquetWriter(tmp, table.schema, compression="zstd")
             writer.write_table(table)
             rows += table.num_rows
         if writer is None:
-            schema = pa.schema([*(pa.field(n, pa.float64()) for n in names)])
+            stats = [pa.field(c, pa.bool_() if c.endswith("_alarm") else pa.float64())
+                     for c in (STAT_COLUMNS if monitor is not None else ())]
+            schema = pa.schema([*(pa.field(n, pa.float64()) for n in names), *stats])
             writer = pq.ParquetWriter(tmp, schema, compression="zstd")
     finally:
         if writer is not None:

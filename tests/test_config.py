@@ -78,6 +78,8 @@ DEFAULTS = [
     ("output.scores", True),             # README: scores = true
     ("output.overwrite", False),         # README: overwrite = false
     ("output.report", True),             # README: report = true
+    ("monitor.confidence", 0.99),        # README: confidence = 0.99
+    ("monitor.time", ""),                # README: time = ""
 ]
 
 
@@ -497,6 +499,7 @@ def test_round_trip_of_a_config_with_every_key_changed(tmp_path):
                     "progress": False, "connect_timeout": 2.5},
         "output": {"directory": "/out", "scores": False, "overwrite": True,
                    "report": False},
+        "monitor": {"confidence": 0.95, "time": "id"},
     }
     assert set(f"{s}.{k}" for s, t in raw.items() for k in t) == _schema_keys()
     cfg = load_config(raw)
@@ -515,3 +518,13 @@ def test_round_trip_of_defaults_has_no_bookkeeping_keys():
     again = load_config(as_dict)
     assert isinstance(again, Config)
     assert all(getattr(again, n) == getattr(cfg, n) for n in SECTIONS)
+
+
+@pytest.mark.parametrize("section, expect", [
+    ({"confidence": 1.0}, "monitor.confidence: 1.0 is not strictly between 0 and 1"),  # a certainty
+    ({"confidence": 0}, "monitor.confidence: 0.0 is not strictly between 0 and 1"),
+    ({"time": "timestamp"}, "monitor.time: \"timestamp\" is not a keep column"),  # keep is empty here
+])
+def test_monitor_section_is_checked(section, expect):
+    with pytest.raises(ConfigError, match=re.escape(expect)):
+        load_config({"input": {"paths": ["x.parquet"]}, "monitor": section})

@@ -52,6 +52,9 @@ valid_config = st.fixed_dictionaries({
         "overwrite": st.booleans(),
         "report": st.booleans(),
     }),
+    "monitor": st.fixed_dictionaries({
+        "confidence": st.floats(min_value=1e-6, max_value=1 - 1e-6),
+    }),
 })
 
 

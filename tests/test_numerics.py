@@ -333,7 +333,8 @@ def test_scores_keep_row_order_and_columns_one_part_per_file(tmp_path):
     assert len(parts) == len(inputs) == 3
     for part, inp in zip(parts, inputs):
         assert pq.ParquetFile(part).metadata.num_rows == pq.ParquetFile(inp).metadata.num_rows
-        assert pq.read_table(part).column_names == ["id", "label", "PC1", "PC2"]
+        assert pq.read_table(part).column_names == ["id", "label", "PC1", "PC2", "t2", "spe", "t2_alarm",
+                                                    "spe_alarm"]
     ddf = res.scores()
     assert ddf.npartitions == 3
     df = ddf.compute()

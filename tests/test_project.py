@@ -53,10 +53,11 @@ def test_project_reproduces_the_stored_scores(tmp_path, rng, center, scale, vect
     stored = _stored(res)
     frame = pd.concat([pq.read_table(p).to_pandas() for p in paths], ignore_index=True)
     from_frame = res.project(frame)
-    assert list(from_frame.columns) == ["row_id", "PC1", "PC2", "PC3"]
+    assert list(from_frame.columns) == ["row_id", "PC1", "PC2", "PC3", "t2", "spe", "t2_alarm", "spe_alarm"]
     assert (from_frame["row_id"].to_numpy() == stored["row_id"].to_numpy()).all()
     # the same decode, transform and product as the scores pass; only BLAS blocking may differ
     np.testing.assert_allclose(_pcs(from_frame, res), _pcs(stored, res), rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(from_frame[["t2", "spe"]], stored[["t2", "spe"]], rtol=1e-10, atol=1e-12)
     lazy = res.project(paths)
     assert lazy.npartitions == len(paths)
     from_paths = lazy.compute().reset_index(drop=True)
@@ -72,9 +73,10 @@ def test_project_applies_the_documented_preprocessing(tmp_path, rng):
     got = res.project(frame)
     f = res.features
     want = ((new - f["mean"].to_numpy()) / f["std"].to_numpy()) @ res.loadings.to_numpy()
-    np.testing.assert_allclose(got.to_numpy(), want, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(_pcs(got, res), want, rtol=1e-12, atol=1e-12)
     assert list(got.index) == list(frame.index)
-    assert list(got.columns) == ["PC1", "PC2", "PC3"]  # no keep column in the frame, none copied
+    # no keep column in the frame, none copied
+    assert list(got.columns) == ["PC1", "PC2", "PC3", "t2", "spe", "t2_alarm", "spe_alarm"]
 
 
 def test_project_matches_scikit_learn_up_to_sign(tmp_path, rng):
@@ -83,7 +85,7 @@ def test_project_matches_scikit_learn_up_to_sign(tmp_path, rng):
     x = _data(rng)
     res, _ = _run(tmp_path, x)
     new = _data(np.random.default_rng(3), n=40)
-    got = res.project(pd.DataFrame(new, columns=[f"f{j}" for j in range(5)])).to_numpy()
+    got = _pcs(res.project(pd.DataFrame(new, columns=[f"f{j}" for j in range(5)])), res)
     ref = PCA(n_components=3, svd_solver="full").fit(x).transform(new)
     signs = np.sign(np.sum(got * ref, axis=0))
     np.testing.assert_allclose(got, ref * signs, rtol=1e-8, atol=1e-8)

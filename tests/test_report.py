@@ -254,7 +254,7 @@ def test_report_files_and_manifest_entry(built):
     assert path == os.path.join(res.directory, "report.html")
     entry = json.load(open(os.path.join(res.directory, "manifest.json")))["report"]
     assert entry["requested"] and entry["written"] and entry["color_by"] == "site"
-    names = ["scree", "cumulative", "loadings", "heatmap", "scatter", "convergence"]
+    names = ["scree", "cumulative", "loadings", "heatmap", "scatter", "convergence", "control"]
     assert entry["files"] == ["report.html", *(f"{n}.png" for n in names)]
     for n in names:
         w, h = _png_size(os.path.join(res.directory, f"{n}.png"))
@@ -269,7 +269,8 @@ def test_report_html_is_self_contained(built):
     assert refs and all(r.startswith("data:image/png;base64,") for r in refs)
     assert "<script" not in page and "http://" not in page and "https://" not in page and "@import" not in page
     images = re.findall(r'<figure id="fig-(\w+)"><img src="data:image/png;base64,([^"]+)"', page)
-    assert [n for n, _ in images] == ["scree", "cumulative", "loadings", "heatmap", "scatter", "convergence"]
+    assert [n for n, _ in images] == ["scree", "cumulative", "loadings", "heatmap", "scatter", "convergence",
+                                      "control"]
     for name, data in images:
         with open(os.path.join(res.directory, f"{name}.png"), "rb") as f:
             assert base64.b64decode(data) == f.read()
