@@ -6,6 +6,7 @@ import datetime
 import json
 import math
 import os
+import re
 import textwrap
 import types
 from pathlib import Path
