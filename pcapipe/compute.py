@@ -313,8 +313,12 @@ class Runner:
             return max(1, _cores() // max(1, self.info.workers))
         return 0
 
-    def compute(self, objs, label: str):
+    def compute(self, objs, label: str, in_flight: int | None = None):
         """Compute dask objects (a list), with a progress bar when asked for and useful.
+
+        ``in_flight`` (local ``threads`` scheduler only) runs at most that many
+        tasks at once, each allowed ``cores // in_flight`` BLAS threads: the
+        memory estimate of :mod:`pcapipe.layout` may ask for fewer, larger tasks.
 
         Raises
         ------
@@ -333,9 +337,10 @@ class Runner:
             if self.info.scheduler == "threads":
                 from threadpoolctl import threadpool_limits
 
-                per = max(1, _cores() // max(1, self.info.workers))
+                lanes = max(1, min(self.info.workers, in_flight or self.info.workers))
+                per = max(1, _cores() // lanes)
                 stack.enter_context(threadpool_limits(limits=per, user_api="blas"))
-                return dask.compute(*objs, scheduler="threads", num_workers=self.info.workers)
+                return dask.compute(*objs, scheduler="threads", num_workers=lanes)
             if self.info.scheduler == "processes":
                 return dask.compute(*objs, scheduler="processes", pool=self._pool)
             return dask.compute(*objs, scheduler="synchronous")
@@ -369,8 +374,9 @@ class Runner:
         """Keep computed objects in (worker) memory for later passes."""
         if self.distributed:
             return self.client.persist(list(objs))
-        return list(dask.persist(*objs, scheduler="threads" if self.info.scheduler != "synchronous"
-                                 else "synchronous"))
+        if self.info.scheduler == "synchronous":
+            return list(dask.persist(*objs, scheduler="synchronous"))
+        return list(dask.persist(*objs, scheduler="threads", num_workers=self.info.workers))
 
     def probe(self, path: str) -> None:
         """Check that every worker can open ``path`` (the first input file) before any data is read.

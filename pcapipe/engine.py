@@ -35,7 +35,6 @@ from .operators import DenseOperator, MatrixFreeOperator, MethodChoice, choose_m
 from .outputs import build_tables, component_names, manifest_for
 from .passes import DataPasses
 from .plan import Plan, make_plan
-from .reader import batch_rows_for
 from .solver import SolverResult, solve
 from .tasks import Transform
 from .weighted import check_total_weight, feature_weight_array, input_scale, weight_features
@@ -259,7 +258,7 @@ class _Job:
         choice = self._choose()
         log.info("method: %s (%s)", choice.method, choice.reason)
         d = p.plan.n_features
-        passes = DataPasses(p.plan, runner, batch_rows_for(d, info.memory_per_worker))
+        passes = DataPasses(p.plan, runner, full=choice.method == "covariance")
         passes.count = self.state.get("passes", 0)
         m = self._moments(passes, choice)
         warned = moment_warnings(p.plan, m, p.cfg.model.scale, p.cfg.model.center)  # row ids, one dominant feature
@@ -408,5 +407,7 @@ def _maybe_cache(passes: DataPasses, runner, transform, n: int, d: int) -> str:
     if decoded > 0.4 * total:
         return (f"re-read every pass (decoded data {decoded / 2**20:.0f} MiB exceed 40% of the "
                 f"{total / 2**20:.0f} MiB memory budget)")
-    passes.cache(transform)
+    if not passes.cache(transform):
+        return (f"re-read every pass (decoded data {decoded / 2**20:.0f} MiB do not fit the memory estimate "
+                "next to the product tasks)")
     return f"decoded blocks kept in worker memory ({decoded / 2**20:.0f} MiB)"

@@ -1,13 +1,19 @@
 """Passes over the data as small dask graphs with a fixed-order tree reduction.
 
-One pass = one task per block (or per file, for scores) plus a binary tree of
-merges whose shape depends only on the number of blocks, so the floating-point
+One pass = one task per task of the :class:`~pcapipe.layout.Layout` (row
+groups grouped or alone; groups of files for scores) plus a binary tree of
+merges whose shape depends only on the number of tasks, so the floating-point
 result is the same whatever scheduler ran it and however many workers there
 were.  Task names are deterministic (``pcapipe-<pass>-<token>-<index>``).
+
+Before a pass is built its layout is sized to the memory budget
+(:func:`pcapipe.layout.layout_for`): a layout that cannot fit raises
+:class:`~pcapipe.errors.InputError` before anything is read.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import os
 
@@ -16,7 +22,10 @@ from dask import delayed
 from dask.base import tokenize
 
 from . import tasks
-from .moments import Moments, merge
+from .compute import _cores
+from .errors import InputError
+from .layout import Layout, layout_for
+from .moments import Moments, merge_into
 from .plan import Plan
 from .reader import ReadSpec
 
@@ -38,6 +47,20 @@ def tree_reduce(parts: list, fn, prefix: str):
     return parts[0]
 
 
+def _chunks(items: list, target_rows: int, rows) -> list[list]:
+    """Consecutive items grouped until each group holds ``target_rows`` (fixed order)."""
+    groups, current, n = [], [], 0
+    for item in items:
+        current.append(item)
+        n += rows(item)
+        if n >= target_rows:
+            groups.append(current)
+            current, n = [], 0
+    if current:
+        groups.append(current)
+    return groups
+
+
 class DataPasses:
     """Build and run the passes of one plan on one :class:`~pcapipe.compute.Runner`.
 
@@ -45,18 +68,41 @@ class DataPasses:
     ----------
     plan : Plan
     runner : Runner
-    batch_rows : int
-        Rows decoded at a time inside a task (bounds task memory).
+    full : bool
+        The moments pass assembles the ``d x d`` co-moment (covariance method):
+        its accumulator counts in the memory estimate, checked here, before
+        anything is read.
+
+    Raises
+    ------
+    InputError
+        The layout cannot fit the memory budget (:func:`pcapipe.layout.layout_for`).
     """
 
-    def __init__(self, plan: Plan, runner, batch_rows: int):
+    def __init__(self, plan: Plan, runner, full: bool = False):
         self.plan = plan
         self.runner = runner
-        self.spec = ReadSpec(plan.columns, plan.vector_column, plan.n_features, batch_rows, plan.keep,
-                             weight_column=plan.row_weight)
         self.count = 0
         self._cache = None
         self._cache_transform = None
+        self._pieces = plan.pieces()
+        d = plan.n_features
+        self.moments_layout = self.layout(8 * d * d if full else 8 * 6 * d)
+        self.spec = self._spec(self.moments_layout)
+
+    def layout(self, accumulator: int, cached: int = 0) -> Layout:
+        """The plan's tasks sized for a pass whose partial result is ``accumulator`` bytes."""
+        info = self.runner.info
+        shared = info.scheduler in ("threads", "synchronous")
+        cores = min(_cores(), self.runner.parallelism) if not self.runner.distributed else 1
+        return layout_for(self._pieces, self.plan.n_features, workers=info.workers,
+                          memory_per_worker=info.memory_per_worker, cores=max(1, cores), shared=shared,
+                          accumulator=accumulator, cached=cached)
+
+    def _spec(self, layout: Layout) -> ReadSpec:
+        p = self.plan
+        return ReadSpec(p.columns, p.vector_column, p.n_features, layout.batch_rows, p.keep,
+                        weight_column=p.row_weight, threads=layout.threads, whole_bytes=layout.whole_bytes)
 
     def _name(self, kind: str, *args) -> str:
         return f"pcapipe-{kind}-{tokenize(self.plan.inputs_record(), self.spec, *args)}"
@@ -66,31 +112,70 @@ class DataPasses:
         log.info("pass %d: %s, %d %s", self.count, what, n, unit)
 
     def moments(self, full: bool, missing: str, fill=None) -> Moments:
-        """One pass: per-block moments merged by Chan-Golub-LeVeque in a fixed tree."""
+        """One pass: per-task moments (batches folded in place) merged by Chan-Golub-LeVeque in a fixed tree."""
+        d = self.plan.n_features
+        layout = self.layout(8 * d * d if full else 8 * 6 * d)
+        spec = self._spec(layout)
         bt = self.runner.blas_threads()
-        name = self._name("moments", full, missing, fill)
-        spec = self.spec
-        parts = [delayed(tasks.moments_task, pure=True)(b.path, b.row_group, spec, full, missing, fill, bt,
-                                                        dask_key_name=f"{name}-{b.index}")
-                 for b in self.plan.blocks]
-        self._announce("moments" + (" and covariance" if full else ""), len(parts), "blocks")
-        (m,) = self.runner.compute([tree_reduce(parts, merge, name)], "moments")
+        name = self._name("moments", full, missing, fill, layout.batch_rows)
+        parts = [delayed(tasks.moments_task, pure=True)(t.pieces, spec, full, missing, fill, bt,
+                                                        dask_key_name=f"{name}-{t.index}")
+                 for t in layout.tasks]
+        self._announce("moments" + (" and covariance" if full else ""), len(parts), "tasks")
+        log.info("memory: %s", layout.estimate.describe())
+        (m,) = self.runner.compute([tree_reduce(parts, merge_into, name)], "moments", in_flight=layout.in_flight)
         return m
 
-    def cache(self, transform: tasks.Transform) -> None:
-        """Decode every block once and keep it in (worker) memory for later products."""
-        bt = self.runner.blas_threads()
-        name = self._name("decoded", transform)
-        objs = [delayed(tasks.decode_task, pure=True)(b.path, b.row_group, self.spec, transform, bt,
-                                                      dask_key_name=f"{name}-{b.index}")
-                for b in self.plan.blocks]
-        self._announce("decode into worker memory", len(objs), "blocks")
-        self._cache = self.runner.persist(objs)
-        self._cache_transform = transform
+    def _decode_layout(self, transform: tasks.Transform, copies: int) -> Layout:
+        d = self.plan.n_features
+        return self.layout(8 * d * 4, cached=copies * 8 * self.plan.n_rows * d)
 
-    @property
-    def cached(self) -> bool:
-        return self._cache is not None
+    def cache(self, transform: tasks.Transform) -> bool:
+        """Decode every task's rows once and keep them in (worker) memory for later products.
+
+        Returns False, and keeps nothing, when the decoded rows do not fit the
+        memory budget next to the product tasks.
+        """
+        try:
+            layout = self._decode_layout(transform, 1)
+        except InputError:
+            return False
+        self._cache = self.runner.persist(self._decode_graph(layout, transform))
+        self._cache_transform = transform
+        return True
+
+    def _decode_graph(self, layout: Layout, transform: tasks.Transform) -> list:
+        bt = self.runner.blas_threads()
+        spec = self._spec(layout)
+        name = self._name("decoded", transform, layout.batch_rows)
+        self._announce("decode into memory", len(layout.tasks), "tasks")
+        return [delayed(tasks.decode_task, pure=True)(t.pieces, spec, transform, bt, dask_key_name=f"{name}-{t.index}")
+                for t in layout.tasks]
+
+    def read_all(self, transform: tasks.Transform) -> np.ndarray:
+        """Every row of the plan decoded and transformed, as one ``(n, d)`` float64 array, in file order.
+
+        Rows dropped by the missing rule are left out.  Runs on the run's
+        workers (``compute.workers`` tasks at a time); the memory estimate
+        counts the parts and the assembled array (2 x n x d x 8 bytes).
+
+        Raises
+        ------
+        InputError
+            The decoded rows do not fit the memory budget.
+        """
+        layout = self._decode_layout(transform, 2)
+        parts = self.runner.compute(self._decode_graph(layout, transform), "decode", in_flight=layout.in_flight)
+        if not parts:
+            return np.zeros((0, self.plan.n_features))
+        out = np.empty((sum(p.shape[0] for p in parts), self.plan.n_features),
+                       order="F" if parts[0].flags.f_contiguous else "C")
+        row = 0
+        for i, p in enumerate(parts):
+            out[row:row + p.shape[0]] = p
+            row += p.shape[0]
+            parts[i] = None  # free as we go
+        return out
 
     def release(self) -> None:
         self._cache = None
@@ -103,32 +188,40 @@ class DataPasses:
         if self._cache is not None and transform is self._cache_transform:
             parts = [delayed(tasks.product_cached_task, pure=True)(x, vd, bt, dask_key_name=f"{name}-{i}")
                      for i, x in enumerate(self._cache)]
+            in_flight = None
         else:
-            parts = [delayed(tasks.product_task, pure=True)(b.path, b.row_group, self.spec, transform, vd, bt,
-                                                            dask_key_name=f"{name}-{b.index}")
-                     for b in self.plan.blocks]
+            layout = self.layout(2 * 8 * self.plan.n_features * v.shape[1])
+            spec = self._spec(layout)
+            parts = [delayed(tasks.product_task, pure=True)(t.pieces, spec, transform, vd, bt,
+                                                            dask_key_name=f"{name}-{t.index}")
+                     for t in layout.tasks]
+            in_flight = layout.in_flight
         self._announce(f"operator on {v.shape[1]} vectors" + (" (cached blocks)" if self._cache else ""),
-                       len(parts), "blocks")
-        (out,) = self.runner.compute([tree_reduce(parts, tasks.add, name)], "product")
+                       len(parts), "tasks")
+        (out,) = self.runner.compute([tree_reduce(parts, tasks.add, name)], "product", in_flight=in_flight)
         return out
 
     def scores(self, transform: tasks.Transform, loadings: np.ndarray, names, out_dir: str,
                monitor=None) -> list[int]:
-        """One pass, one task per input file: writes ``out_dir/part-NNNNN.parquet``.
+        """One pass, small files grouped into one task: writes ``out_dir/part-NNNNN.parquet`` per input file.
 
         ``monitor`` (a :class:`~pcapipe.monitor.MonitorSpec`) adds the t2, spe
         and alarm columns.
         """
+        layout = self.layout(8 * self.plan.n_features * loadings.shape[1])
+        spec = self._spec(layout)
+        spec = dataclasses.replace(spec, threads=1)
         bt = self.runner.blas_threads()
         name = self._name("scores", transform, loadings, out_dir, monitor)
         os.makedirs(out_dir, exist_ok=True)
-        objs = []
-        for fi, f in enumerate(self.plan.files):
-            groups = [rg for rg, n in enumerate(f.row_group_rows) if n]
-            out = os.path.join(out_dir, f"part-{fi:05d}.parquet")
-            objs.append(delayed(tasks.scores_task, pure=True)(f.path, groups, self.spec, transform, loadings,
-                                                              tuple(names), out, bt, monitor,
-                                                              dask_key_name=f"{name}-{fi}"))
-        self._announce("scores", len(objs), "files")
-        rows = self.runner.compute(objs, "scores")
-        return list(rows)
+        parts = [(f.path, [rg for rg, n in enumerate(f.row_group_rows) if n],
+                  os.path.join(out_dir, f"part-{fi:05d}.parquet")) for fi, f in enumerate(self.plan.files)]
+        target = max(layout.batch_rows, (32 << 20) // (8 * max(1, self.plan.n_features)))
+        rows_of = {f.path: f.n_rows for f in self.plan.files}
+        groups = _chunks(parts, target, lambda part: rows_of[part[0]])
+        objs = [delayed(tasks.scores_task, pure=True)(tuple(g), spec, transform, loadings, tuple(names), bt,
+                                                      monitor, dask_key_name=f"{name}-{i}")
+                for i, g in enumerate(groups)]
+        self._announce("scores", len(parts), "files")
+        rows = self.runner.compute(objs, "scores", in_flight=layout.in_flight)
+        return [r for group in rows for r in group]

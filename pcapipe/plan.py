@@ -22,6 +22,9 @@ from .discover import find_inputs, resolve_inputs
 from .errors import InputError
 from .weight_table import read_feature_weights
 from .guards import FooterStats
+from .layout import Piece, footer_costs
+from .reader import is_numeric as _is_numeric
+from .reader import one_line as _one_line
 
 log = logging.getLogger("pcapipe")
 
@@ -42,6 +45,8 @@ class FileInfo:
     mtime_ns: int
     n_rows: int
     row_group_rows: tuple[int, ...]
+    row_group_bytes: tuple[int, ...] = ()   # uncompressed bytes of the selected columns
+    row_group_stream: tuple[int, ...] = ()  # estimated reader buffers to stream them (layout.footer_costs)
 
 
 @dataclass(frozen=True)
@@ -93,6 +98,16 @@ class Plan:
     def total_bytes(self) -> int:
         return sum(f.size for f in self.files)
 
+    def pieces(self) -> tuple[Piece, ...]:
+        """Every non-empty row group in file order, with its footer costs (for :mod:`pcapipe.layout`)."""
+        out = []
+        for b in self.blocks:
+            f = self.files[b.file_index]
+            nbytes = f.row_group_bytes[b.row_group] if f.row_group_bytes else 0
+            stream = f.row_group_stream[b.row_group] if f.row_group_stream else 0
+            out.append(Piece(b.file_index, b.path, b.row_group, b.n_rows, nbytes, stream))
+        return tuple(out)
+
     def inputs_record(self) -> list[dict]:
         """The inputs as recorded in the manifest and checked on resume."""
         return [
@@ -108,14 +123,6 @@ def _open_footer(path: str) -> pq.ParquetFile:
         raise InputError(
             f"{path}: not a readable Parquet file ({_one_line(e)}); re-copy it or remove it from input.paths"
         ) from e
-
-
-def _one_line(e: BaseException) -> str:
-    return " ".join(str(e).split()) or type(e).__name__
-
-
-def _is_numeric(t: pa.DataType) -> bool:
-    return pa.types.is_integer(t) or pa.types.is_floating(t)
 
 
 def _is_list(t: pa.DataType) -> bool:
@@ -399,7 +406,8 @@ class _Scan:
             self.stats.add(md)
             rg_rows = tuple(md.row_group(i).num_rows for i in range(md.num_row_groups))
             st = os.stat(path)
-            files.append(FileInfo(path, st.st_size, st.st_mtime_ns, md.num_rows, rg_rows))
+            files.append(FileInfo(path, st.st_size, st.st_mtime_ns, md.num_rows, rg_rows,
+                                  *footer_costs(md, self.columns)))
             for rg, n in enumerate(rg_rows):
                 if n:
                     blocks.append(Block(len(blocks), fi, path, rg, n))

@@ -1,9 +1,9 @@
 """Scores for new rows with a finished run's preprocessing and loadings.
 
-The same decode and transform as the scores pass (:mod:`pcapipe.reader`,
-:class:`pcapipe.tasks.Transform`), so projecting the training rows gives the
-stored scores.  Parquet inputs are streamed in batches inside one dask task
-per file, so memory is bounded by a batch of features plus the file's scores
+The same decode, transform and score writer as the scores pass
+(:mod:`pcapipe.scoring`), so projecting the training rows gives the stored
+scores.  Parquet inputs are streamed in batches inside one dask task per
+file, so memory is bounded by a batch of features plus the file's scores
 (``k`` columns), never by the file's feature data.
 """
 
@@ -18,10 +18,12 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .errors import InputError, OutputError
+from .layout import batch_rows_for
 from .plan import resolve_inputs
-from .reader import ReadSpec, batch_rows_for, batch_to_array
-from .monitor import STAT_COLUMNS, MonitorSpec
-from .tasks import Transform, score_columns
+from .reader import ReadSpec, is_numeric
+from .scoring import out_schema, score_batch, score_tables, write_part
+from .monitor import MonitorSpec
+from .tasks import Transform
 from .weighted import input_scale
 
 __all__ = ["Projector", "projector_for", "project_frame", "project_paths", "project_to_directory"]
@@ -67,10 +69,6 @@ def projector_for(result) -> Projector:
                      tuple(result.loadings.columns), monitor)
 
 
-def _is_numeric(t: pa.DataType) -> bool:
-    return pa.types.is_integer(t) or pa.types.is_floating(t)
-
-
 def _check_schema(pr: Projector, schema: pa.Schema, where: str) -> None:
     """Every feature column present, with a numeric type (a list of numbers for a vector column)."""
     missing = [c for c in pr.spec.columns if schema.get_field_index(c) < 0]
@@ -82,25 +80,12 @@ def _check_schema(pr: Projector, schema: pa.Schema, where: str) -> None:
         t = schema.field(name).type
         if pr.spec.vector_column:
             ok = (pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t)) \
-                and _is_numeric(t.value_type)
+                and is_numeric(t.value_type)
         else:
-            ok = _is_numeric(t)
+            ok = is_numeric(t)
         if not ok:
             need = "a list of numbers" if pr.spec.vector_column else "a number type"
             raise InputError(f"{where}: column {name!r} has type {t}; the run needs {need} there")
-
-
-def _scores_of(pr: Projector, batch, where: str) -> tuple[np.ndarray, dict]:
-    """Scores of one batch and the monitoring columns; rows dropped for missing values get NaN."""
-    t = pr.transform
-    x = batch_to_array(batch, pr.spec, where, t.shift, t.inv_scale)
-    try:
-        return score_columns(x, t, pr.loadings, pr.monitor)
-    except ValueError as e:
-        j = e.args[0]
-        col = pr.spec.columns[0] if pr.spec.vector_column else pr.spec.columns[j]
-        raise InputError(f"{where}: column {col!r} has missing or non-finite values; the run used "
-                         'input.missing = "fail", so rows with gaps cannot be scored') from e
 
 
 def _keep_for(pr: Projector, names, keep) -> list[str]:
@@ -123,7 +108,7 @@ def project_frame(result, df: pd.DataFrame, keep=None) -> pd.DataFrame:
         raise InputError(f"project: the feature columns cannot be read as numbers ({e})") from e
     _check_schema(pr, table.schema, "project")
     keep = _keep_for(pr, list(df.columns), keep)
-    s, extra = _scores_of(pr, table, "project")
+    s, extra = score_batch(table, pr.spec, pr.transform, pr.loadings, "project", monitor=pr.monitor)
     out = pd.DataFrame(s, index=df.index, columns=list(pr.names))
     for name, values in extra.items():
         out[name] = values
@@ -132,31 +117,10 @@ def project_frame(result, df: pd.DataFrame, keep=None) -> pd.DataFrame:
     return out
 
 
-def _out_schema(pr: Projector, schema: pa.Schema, keep) -> pa.Schema:
-    stats = [pa.field(c, pa.bool_() if c.endswith("_alarm") else pa.float64())
-             for c in (STAT_COLUMNS if pr.monitor is not None else ())]
-    return pa.schema([*(schema.field(c) for c in keep), *(pa.field(n, pa.float64()) for n in pr.names), *stats])
-
-
-def _iter_tables(pr: Projector, path: str, keep):
-    """Stream one file: an Arrow table (keep columns + scores) per decoded batch."""
-    pf = pq.ParquetFile(path)
-    out_schema = _out_schema(pr, pf.schema_arrow, keep)
-    cols = list(dict.fromkeys([*pr.spec.columns, *keep]))
-    try:
-        for batch in pf.iter_batches(batch_size=pr.spec.batch_rows, columns=cols, use_threads=False):
-            s, extra = _scores_of(pr, batch, path)
-            arrays = [batch.column(c) for c in keep] + [pa.array(s[:, j]) for j in range(s.shape[1])]
-            arrays += [pa.array(v) for v in extra.values()]
-            yield pa.Table.from_arrays(arrays, schema=out_schema)
-    except pa.ArrowException as e:
-        raise InputError(f"{path}: cannot be decoded ({e}); the file may be truncated, re-copy it") from e
-
-
 def _project_file(pr: Projector, path: str, keep) -> pd.DataFrame:
-    tables = list(_iter_tables(pr, path, keep))
+    tables = list(score_tables(path, None, pr.spec, pr.transform, pr.loadings, pr.names, keep, pr.monitor))
     if not tables:
-        return _out_schema(pr, pq.ParquetFile(path).schema_arrow, keep).empty_table().to_pandas()
+        return out_schema(pq.ParquetFile(path).schema_arrow, keep, pr.names, pr.monitor).empty_table().to_pandas()
     return pa.concat_tables(tables).to_pandas()
 
 
@@ -196,20 +160,14 @@ def project_paths(result, data, keep=None):
     pr = projector_for(result)
     paths, names = _checked_paths(pr, data)
     keep = _keep_for(pr, names, keep)
-    meta = _out_schema(pr, pq.ParquetFile(paths[0]).schema_arrow, keep).empty_table().to_pandas()
+    meta = out_schema(pq.ParquetFile(paths[0]).schema_arrow, keep, pr.names, pr.monitor).empty_table().to_pandas()
     parts = [dask.delayed(_project_file)(pr, p, keep)
              for i, p in enumerate(paths)]
     return dd.from_delayed(parts, meta=meta, verify_meta=False)
 
 
 def _write_part(pr: Projector, path: str, keep, target: str) -> str:
-    """Stream one file's scores into ``target`` (written under a temporary name, then renamed)."""
-    tmp = target + ".tmp"
-    schema = _out_schema(pr, pq.ParquetFile(path).schema_arrow, keep)
-    with pq.ParquetWriter(tmp, schema, compression="zstd") as writer:
-        for table in _iter_tables(pr, path, keep):
-            writer.write_table(table)
-    os.replace(tmp, target)
+    write_part(path, None, pr.spec, pr.transform, pr.loadings, pr.names, target, keep, pr.monitor)
     return target
 
 

@@ -7,13 +7,21 @@ decoded straight into one float64 buffer: scalar columns fill a
 Fortran-ordered buffer column by column (contiguous writes, and the layout
 BLAS ``syrk``/``gemm`` want); a vector column is reshaped from its child
 buffer without per-row Python work.  An optional affine transform
-``(x - shift) * inv_scale`` is fused into that single write.
+``(x - shift) * inv_scale`` is fused into that single write, computed in
+float64 whatever the column's type (a float32 column with mean 1e4 keeps its
+digits on every numpy, value-based casting or not).
+
+A dask task reads a :class:`~pcapipe.layout.Task` (:func:`iter_task`):
+small row groups are gathered into full batches before decoding, and a
+task given several threads decodes a streamed row group column-parallel
+(one pyarrow stream per share of the columns, filling one buffer).
 """
 
 from __future__ import annotations
 
 import functools
 import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Iterator
 
@@ -23,41 +31,28 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .errors import InputError
+from .layout import WHOLE_ROW_GROUP_BYTES
 
-__all__ = ["batch_rows_for", "ReadSpec", "iter_block", "iter_file", "batch_to_array", "table_to_array",
+__all__ = ["ReadSpec", "iter_block", "iter_file", "iter_task", "batch_to_array", "is_numeric", "one_line",
            "split_weights"]
 
 
-# Decoded rows per batch: 8 MiB of float64.  Measured on 1M x 256 float64 (see
-# DEVELOPERS.md): BLAS is as fast as with 32 MiB and the process peaks ~300 MB lower.
-BATCH_BYTES = 8 << 20
-# A row group up to this size (uncompressed) is read in one call and sliced:
-# ~2.5x faster than the streaming reader on wide tables (2048 columns).
-WHOLE_ROW_GROUP_BYTES = 64 << 20
+def is_numeric(t: pa.DataType) -> bool:
+    """Arrow types the reader decodes to float64 (integers and floats)."""
+    return pa.types.is_integer(t) or pa.types.is_floating(t)
 
 
-def batch_rows_for(n_features: int, memory_per_worker: int | None = None) -> int:
-    """Rows per decoded batch: 8 MiB, but at least d rows (up to 64 MiB).
-
-    Wide tables need the floor: each batch costs an O(d^2) merge of the Gram
-    and one Python call per scalar column, both small next to the O(rows d^2)
-    product only when rows >= d.  Measured on 12500 x 2048 float32 blocks, one
-    thread: 2048-row batches are 3x faster than 512-row ones.  A small worker
-    memory budget lowers both limits.
-    """
-    d = max(1, n_features)
-    cap = 8 * BATCH_BYTES
-    budget = BATCH_BYTES
-    if memory_per_worker is not None:
-        budget = min(BATCH_BYTES, max(memory_per_worker // 16, 1 << 20))
-        cap = min(cap, memory_per_worker // 4)
-    rows = max(256, budget // (8 * d), min(d, cap // (8 * d)))
-    return int(rows)
+def one_line(e: BaseException) -> str:
+    """An exception's message on one line (pyarrow's span several), or its type's name."""
+    return " ".join(str(e).split()) or type(e).__name__
 
 
 @dataclass(frozen=True)
 class ReadSpec:
     """What to decode: the feature columns, how wide, and how many rows at a time.
+
+    ``threads`` > 1 decodes a streamed row group column-parallel; row groups
+    up to ``whole_bytes`` (uncompressed) are read in one call and sliced.
 
     With a ``weight_column`` the decoded batch has ``n_features + 1`` columns,
     the last holding the row weights (checked finite and >= 0, never
@@ -70,6 +65,13 @@ class ReadSpec:
     batch_rows: int
     keep: tuple[str, ...] = ()
     weight_column: str = ""
+    threads: int = 1
+    whole_bytes: int = WHOLE_ROW_GROUP_BYTES
+
+    @property
+    def read_columns(self) -> list[str]:
+        """The Parquet columns decoded: features, then the weight column."""
+        return [*self.columns, *([self.weight_column] if self.weight_column else [])]
 
 
 def split_weights(x: np.ndarray, spec: ReadSpec) -> tuple[np.ndarray, np.ndarray | None]:
@@ -103,7 +105,8 @@ def _column_into(out: np.ndarray, arr: pa.ChunkedArray | pa.Array, shift, inv_sc
     if shift is None:
         out[:] = values
     else:
-        np.subtract(values, shift, out=out, casting="unsafe")
+        # dtype: the subtraction itself in float64 (numpy 1.x would do float32 - scalar in float32)
+        np.subtract(values, shift, out=out, dtype=np.float64, casting="unsafe")
         if inv_scale is not None:
             out *= inv_scale
 
@@ -175,7 +178,7 @@ def batch_to_array(batch, spec: ReadSpec, where: str, shift=None, inv_scale=None
             if shift is None:
                 x64[...] = x
             else:
-                np.subtract(x, shift, out=x64, casting="unsafe")
+                np.subtract(x, shift, out=x64, dtype=np.float64, casting="unsafe")
                 if inv_scale is not None:
                     x64 *= inv_scale
             x = x64
@@ -206,16 +209,6 @@ def _with_weights(batch, spec: ReadSpec, where: str, shift, inv_scale, first_row
     return out
 
 
-def table_to_array(table: pa.Table, spec: ReadSpec, where: str, shift=None, inv_scale=None) -> np.ndarray:
-    """Decode a whole in-memory table (used by ``project`` on a DataFrame)."""
-    return batch_to_array(table, spec, where, shift, inv_scale)
-
-
-def _one_line(e: BaseException) -> str:
-    text = " ".join(str(e).split())
-    return text or type(e).__name__
-
-
 @functools.lru_cache(maxsize=256)
 def _row_group_starts(path: str, mtime_ns: int) -> tuple[int, ...]:
     """First row of each row group, read once per file and process (not once per block)."""
@@ -229,8 +222,53 @@ def _open(path: str) -> pq.ParquetFile:
         # pre_buffer would hold the whole row group; a small read buffer streams the pages
         return pq.ParquetFile(path, pre_buffer=False, buffer_size=1 << 16)
     except (OSError, pa.ArrowException) as e:
-        raise InputError(f"{path}: cannot be read as Parquet ({_one_line(e)}); re-copy the file, or "
+        raise InputError(f"{path}: cannot be read as Parquet ({one_line(e)}); re-copy the file, or "
                          "leave it out of input.paths") from e
+
+
+def _check_columns(path: str, pf: pq.ParquetFile, columns) -> None:
+    present = set(pf.schema_arrow.names)  # schema_arrow is rebuilt on every access: read it once
+    gone = [c for c in columns if c not in present]
+    if gone:
+        raise InputError(f"{path}: column {gone[0]!r} is gone; the file changed after the run was "
+                         "planned, start the run again")
+
+
+def _decode_error(path: str, row_group, e: BaseException) -> InputError:
+    return InputError(f"{path} (row group {row_group}): cannot be decoded ({one_line(e)}); the file "
+                      "may be truncated or corrupt: re-copy it, or leave it out of input.paths")
+
+
+def _parallel_stream(path: str, row_group: int, spec: ReadSpec, shift, inv_scale) -> Iterator[np.ndarray]:
+    """Stream a row group of scalar columns with ``spec.threads`` pyarrow readers at once.
+
+    Each thread owns an interleaved share of the columns and its own file
+    handle; all use the same batch size, so their batches cover the same rows
+    and fill one Fortran-ordered float64 buffer.  pyarrow and the numpy copy
+    release the GIL, so the shares decode on separate cores.
+    """
+    k = spec.threads
+    shares = [list(range(i, len(spec.columns), k)) for i in range(k)]
+    streams = [_open(path).iter_batches(batch_size=spec.batch_rows, row_groups=[row_group],
+                                        columns=[spec.columns[j] for j in share], use_threads=False)
+               for share in shares]
+
+    def fill(i: int, out: np.ndarray) -> int:
+        batch = next(streams[i], None)
+        if batch is None:
+            return 0
+        for col, j in zip(batch.columns, shares[i]):
+            _column_into(out[:batch.num_rows, j], col, None if shift is None else shift[j],
+                         None if inv_scale is None else inv_scale[j])
+        return batch.num_rows
+
+    with ThreadPoolExecutor(k, thread_name_prefix="pcapipe-decode") as pool:
+        while True:
+            out = np.empty((spec.batch_rows, spec.n_features), order="F")
+            rows = list(pool.map(fill, range(k), [out] * k))
+            if not rows[0]:
+                return
+            yield out if rows[0] == spec.batch_rows else out[:rows[0]]
 
 
 def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=None,
@@ -239,7 +277,8 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
 
     ``whole`` reads the row group in one call whatever its size (for a caller
     that keeps the whole decoded block anyway); otherwise only row groups up
-    to ``WHOLE_ROW_GROUP_BYTES`` are, and larger ones are streamed.
+    to ``spec.whole_bytes`` are, and larger ones are streamed (column-parallel
+    when ``spec.threads`` > 1 and there are no keep columns to carry).
 
     Yields ``(x, keep_batch)`` where ``keep_batch`` holds the keep columns
     when ``with_keep`` is true (else None).
@@ -251,20 +290,20 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
         a column since it was planned, or holds a bad vector.
     """
     pf = _open(path)
-    columns = list(dict.fromkeys([*spec.columns, *([spec.weight_column] if spec.weight_column else []),
-                                  *(spec.keep if with_keep else [])]))
-    present = set(pf.schema_arrow.names)  # schema_arrow is rebuilt on every access: read it once
-    gone = [c for c in columns if c not in present]
-    if gone:
-        raise InputError(f"{path}: column {gone[0]!r} is gone; the file changed after the run was "
-                         "planned, start the run again")
+    columns = list(dict.fromkeys([*spec.read_columns, *(spec.keep if with_keep else ())]))
+    _check_columns(path, pf, columns)
     try:
         # Only vector and weight errors name a row, so other blocks skip the row-group offsets.
         named = spec.vector_column or spec.weight_column
         row = _row_group_starts(path, os.stat(path).st_mtime_ns)[row_group] if named else 0
-        if whole or pf.metadata.row_group(row_group).total_byte_size <= WHOLE_ROW_GROUP_BYTES:
-            whole = pf.read_row_group(row_group, columns=columns, use_threads=False)
-            batches = (whole.slice(i, spec.batch_rows) for i in range(0, whole.num_rows, spec.batch_rows))
+        if whole or pf.metadata.row_group(row_group).total_byte_size <= spec.whole_bytes:
+            table = pf.read_row_group(row_group, columns=columns, use_threads=spec.threads > 1)
+            batches = (table.slice(i, spec.batch_rows) for i in range(0, table.num_rows, spec.batch_rows))
+        elif (spec.threads > 1 and not (with_keep or spec.vector_column or spec.weight_column)
+              and len(spec.columns) >= 2 * spec.threads):
+            for x in _parallel_stream(path, row_group, spec, shift, inv_scale):
+                yield x, None
+            return
         else:
             batches = pf.iter_batches(batch_size=spec.batch_rows, row_groups=[row_group],
                                       columns=columns, use_threads=False)
@@ -274,8 +313,7 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
             keep = batch.select(list(spec.keep)) if with_keep else None
             yield x, keep
     except (OSError, pa.ArrowException) as e:
-        raise InputError(f"{path} (row group {row_group}): cannot be decoded ({_one_line(e)}); the file "
-                         "may be truncated or corrupt: re-copy it, or leave it out of input.paths") from e
+        raise _decode_error(path, row_group, e) from e
 
 
 def iter_file(path: str, row_groups, spec: ReadSpec, shift=None, inv_scale=None,
@@ -283,3 +321,51 @@ def iter_file(path: str, row_groups, spec: ReadSpec, shift=None, inv_scale=None,
     """Stream the given row groups of one file in order (row order kept)."""
     for rg in row_groups:
         yield from iter_block(path, rg, spec, shift, inv_scale, with_keep)
+
+
+def _small_table(piece, spec: ReadSpec) -> pa.Table:
+    pf = _open(piece.path)
+    _check_columns(piece.path, pf, spec.read_columns)
+    try:
+        return pf.read_row_group(piece.row_group, columns=spec.read_columns, use_threads=False)
+    except (OSError, pa.ArrowException) as e:
+        raise _decode_error(piece.path, piece.row_group, e) from e
+
+
+def _gathered(tables: list, spec: ReadSpec, shift, inv_scale) -> Iterator[np.ndarray]:
+    """Decode small row groups (of several files) as full batches: one Arrow concat, not one decode each."""
+    try:
+        table = pa.concat_tables(tables, promote_options="permissive")
+    except (pa.ArrowInvalid, pa.ArrowTypeError):  # types that do not unify: decode one by one
+        for t in tables:
+            yield batch_to_array(t, spec, "input", shift, inv_scale)
+        return
+    for i in range(0, table.num_rows, spec.batch_rows):
+        yield batch_to_array(table.slice(i, spec.batch_rows), spec, "input", shift, inv_scale)
+
+
+def iter_task(pieces, spec: ReadSpec, shift=None, inv_scale=None) -> Iterator[np.ndarray]:
+    """Decoded batches of one task's row groups (:class:`pcapipe.layout.Piece`), in order.
+
+    Row groups smaller than a batch (and small enough to read whole) are
+    gathered until a batch is full; the others are streamed by
+    :func:`iter_block`.  A vector column and row weights are decoded file by
+    file, so that their errors name the file and row.
+    """
+    pending, rows = [], 0
+    gather = not (spec.vector_column or spec.weight_column)
+    for p in pieces:
+        if gather and p.n_rows < spec.batch_rows and p.nbytes <= spec.whole_bytes:
+            pending.append(_small_table(p, spec))
+            rows += p.n_rows
+            if rows >= spec.batch_rows:
+                yield from _gathered(pending, spec, shift, inv_scale)
+                pending, rows = [], 0
+            continue
+        if pending:
+            yield from _gathered(pending, spec, shift, inv_scale)
+            pending, rows = [], 0
+        for x, _ in iter_block(p.path, p.row_group, spec, shift, inv_scale):
+            yield x
+    if pending:
+        yield from _gathered(pending, spec, shift, inv_scale)

@@ -1,27 +1,25 @@
-"""Functions that run inside dask tasks, one call per block (or per file).
+"""Functions that run inside dask tasks, one call per task of the layout (or group of files).
 
-Each task opens its Parquet file with pyarrow, streams the block in batches
-(:mod:`pcapipe.reader`) and returns a small partial result: moments, a
-``d x b`` product, or a row count after writing a scores part.  Tasks take
-only plain values (paths, numbers, arrays), so they run unchanged in a
-thread, a process, or on a remote dask worker.
+Each task reads its row groups (:class:`pcapipe.layout.Piece`) with
+:func:`pcapipe.reader.iter_task`, batch by batch, and returns a small partial
+result: moments folded into one accumulator, a ``d x b`` product, or row
+counts after writing scores parts.  Tasks take only plain values (paths,
+numbers, arrays, frozen dataclasses), so they run unchanged in a thread, a
+process, or on a remote dask worker.
 """
 
 from __future__ import annotations
 
-import os
 from dataclasses import dataclass
 
 import numpy as np
-import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .moments import Moments, batch_moments, tree_merge
-from .monitor import STAT_COLUMNS, MonitorSpec, monitor_columns
-from .reader import ReadSpec, iter_block, iter_file, split_weights
+from .moments import Accumulator, Moments
+from .monitor import MonitorSpec, monitor_columns
+from .reader import ReadSpec, iter_task, split_weights
 
-__all__ = ["Transform", "prepare_rows", "score_rows", "score_columns", "moments_task", "product_task", "scores_task",
-           "decode_task",
+__all__ = ["Transform", "prepare_rows", "score_rows", "score_columns", "moments_task", "product_task", "scores_task", "decode_task",
            "product_cached_task", "add", "limit_blas", "probe_task"]
 
 _blas_limit = None
@@ -92,17 +90,14 @@ def score_columns(x: np.ndarray, t: Transform, loadings: np.ndarray,
     return s, extra
 
 
-def moments_task(path: str, row_group: int, spec: ReadSpec, full: bool, missing: str,
-                 fill=None, blas_threads: int = 0) -> Moments:
-    """Moments of one block, batches merged pairwise in order."""
+def moments_task(pieces, spec: ReadSpec, full: bool, missing: str, fill=None, blas_threads: int = 0) -> Moments:
+    """Moments of one task's rows: every batch folded into one :class:`~pcapipe.moments.Accumulator`."""
     limit_blas(blas_threads)
-    parts = []
-    for xb, _ in iter_block(path, row_group, spec):
+    acc = Accumulator(spec.n_features, full, missing, fill, weighted=bool(spec.weight_column))
+    for xb in iter_task(pieces, spec):
         x, w = split_weights(xb, spec)
-        parts.append(batch_moments(x, full, missing, fill, weights=w))
-    if not parts:
-        return Moments.empty(spec.n_features, full, weighted=bool(spec.weight_column))
-    return tree_merge(parts)
+        acc.add(x, w)
+    return acc.result()
 
 
 def _rows(xb: np.ndarray, spec: ReadSpec, t: Transform) -> tuple[np.ndarray, np.ndarray | None]:
@@ -122,26 +117,25 @@ def _product(x: np.ndarray, v: np.ndarray, w: np.ndarray | None = None) -> np.nd
     return x.T @ y
 
 
-def product_task(path: str, row_group: int, spec: ReadSpec, t: Transform, v: np.ndarray,
-                 blas_threads: int = 0) -> np.ndarray:
-    """``sum over batches of Xb~^T (Xb~ V)`` for one block, Xb~ transformed on the fly."""
+def product_task(pieces, spec: ReadSpec, t: Transform, v: np.ndarray, blas_threads: int = 0) -> np.ndarray:
+    """``sum over batches of Xb~^T (Xb~ V)`` for one task, Xb~ transformed on the fly."""
     limit_blas(blas_threads)
     out = np.zeros((spec.n_features, v.shape[1]))
-    for xb, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale):
+    for xb in iter_task(pieces, spec, t.shift, t.inv_scale):
         x, w = _rows(xb, spec, t)
         out += _product(x, v, w)
     return out
 
 
-def decode_task(path: str, row_group: int, spec: ReadSpec, t: Transform, blas_threads: int = 0) -> np.ndarray:
-    """A whole block decoded and transformed, to be kept in worker memory between passes.
+def decode_task(pieces, spec: ReadSpec, t: Transform, blas_threads: int = 0) -> np.ndarray:
+    """A task's rows decoded and transformed (rows dropped for missing values left out), in one array.
 
     Weighted rows are kept as ``sqrt(w) x`` (rows of weight 0 left out), so
     that the cached product ``X^T X V`` is the weighted one.
     """
     limit_blas(blas_threads)
     parts = []
-    for xb, _ in iter_block(path, row_group, spec, t.shift, t.inv_scale, whole=True):
+    for xb in iter_task(pieces, spec, t.shift, t.inv_scale):
         x, w = _rows(xb, spec, t)
         if w is not None:
             x = x[w > 0] * np.sqrt(w[w > 0])[:, None]
@@ -162,42 +156,19 @@ def add(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return a + b
 
 
-def scores_task(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: np.ndarray,
-                names, out_path: str, blas_threads: int = 0, monitor: MonitorSpec | None = None) -> int:
-    """Write the scores of one input file to ``out_path``; returns the rows written.
+def scores_task(parts, spec: ReadSpec, t: Transform, loadings: np.ndarray, names, blas_threads: int = 0,
+                monitor: MonitorSpec | None = None) -> list[int]:
+    """Write the scores of several input files, one part each; returns the rows written per part.
 
-    Keep columns are copied as they are; rows dropped for missing values get
-    NaN scores, so row ``i`` of the part is row ``i`` of the input file.  The
-    part is written under a temporary name and renamed, so a part that exists
-    is complete.
+    ``parts`` is a sequence of ``(input path, row groups, part path)``; each
+    part is written by :func:`pcapipe.scoring.write_part` (the writer
+    ``project`` uses too).  ``monitor`` adds the t2, spe and alarm columns.
     """
+    from .scoring import write_part
+
     limit_blas(blas_threads)
-    tmp = out_path + ".tmp"
-    writer = None
-    rows = 0
-    try:
-        for xb, keep in iter_file(path, row_groups, spec, t.shift, t.inv_scale, with_keep=True):
-            s, extra = score_columns(split_weights(xb, spec)[0], t, loadings, monitor)
-            arrays = list(keep.columns) if keep is not None else []
-            labels = list(keep.schema.names) if keep is not None else []
-            arrays += [pa.array(s[:, j]) for j in range(s.shape[1])] + [pa.array(v) for v in extra.values()]
-            table = pa.Table.from_arrays(arrays, names=labels + list(names) + list(extra))
-            if writer is None:
-                writer = pq.ParquetWriter(tmp, table.schema, compression="zstd")
-            writer.write_table(table)
-            rows += table.num_rows
-        if writer is None:
-            stats = [pa.field(c, pa.bool_() if c.endswith("_alarm") else pa.float64())
-                     for c in (STAT_COLUMNS if monitor is not None else ())]
-            schema = pa.schema([*(pa.field(n, pa.float64()) for n in names), *stats])
-            writer = pq.ParquetWriter(tmp, schema, compression="zstd")
-    finally:
-        if writer is not None:
-            writer.close()
-    os.replace(tmp, out_path)
-    return rows
-
-
+    return [write_part(path, groups, spec, t, loadings, names, out, spec.keep, monitor)
+            for path, groups, out in parts]
 
 
 def probe_task(path: str) -> dict:

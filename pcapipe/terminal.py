@@ -28,7 +28,7 @@ def _local_memory(cfg) -> tuple[int, int, str]:
 def check_report(config, overrides=()) -> str:
     """Validate the config and plan the run; return the summary ``pcapipe check`` prints."""
     from .engine import prepare
-    from .reader import batch_rows_for
+    from .layout import layout_for
 
     p = prepare(config, overrides)
     plan, cfg = p.plan, p.cfg
@@ -38,8 +38,10 @@ def check_report(config, overrides=()) -> str:
     k = comp if isinstance(comp, int) else min(d, max(2, cfg.model.oversample))
     block = min(d, k + cfg.model.oversample)
     choice = choose_method(cfg.model.method, n, d, block, plan.total_bytes, memory, workers, min(_cores(), workers))
-    batch = batch_rows_for(d, memory)
-    task_bytes = batch * d * 8 * 3 + (8 * d * d * 3 if choice.method == "covariance" else 8 * d * block * 2)
+    shared = cfg.compute.scheduler in ("threads", "synchronous")
+    accumulator = 8 * d * d if choice.method == "covariance" else 2 * 8 * d * block
+    layout = layout_for(plan.pieces(), d, workers=workers, memory_per_worker=memory,
+                        cores=max(1, min(_cores(), workers)) if shared else 1, shared=shared, accumulator=accumulator)
     lines = [
         f"config      {cfg.source}",
         f"files       {len(plan.files)} ({format_size(plan.total_bytes)}), {len(plan.blocks)} blocks (row groups)",
@@ -52,7 +54,8 @@ def check_report(config, overrides=()) -> str:
         f"components  {comp}" + ("" if isinstance(comp, int) else " of the variance"),
         f"method      {choice.method}: {choice.reason}",
         f"compute     {cfg.compute.scheduler}, {workers} worker(s), {format_size(memory)} {memory_note}",
-        f"memory      ~{format_size(task_bytes)} per task (batches of {batch} rows)",
+        f"memory      {layout.estimate.describe()}; {len(layout.tasks)} task(s), batches of "
+        f"{layout.batch_rows} rows, {layout.in_flight} at once x {layout.threads} thread(s)",
         f"output      {p.writer.directory}",
         *_feature_notes(plan),
         "ok: nothing was written",

@@ -11,7 +11,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from pcapipe.errors import InputError
-from pcapipe.reader import ReadSpec, batch_to_array, iter_block, iter_file, table_to_array
+from pcapipe.reader import ReadSpec, batch_to_array, iter_block, iter_file
 from conftest import write_parquet
 
 
@@ -113,11 +113,6 @@ def test_keep_columns_come_with_rows(tmp_path, x):
         got_ids += keep.column("id").to_pylist()
     assert got_ids == ids.tolist()
     assert all(k is None for _, k in iter_block(path, 0, spec))
-
-
-def test_table_to_array_matches_batch_to_array(x):
-    table = pa.table({f"f{j}": x[:, j] for j in range(5)})
-    np.testing.assert_array_equal(table_to_array(table, _spec(5), "t"), x)
 
 
 # ------------------------------------------------------------ errors while decoding
