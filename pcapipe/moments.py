@@ -102,6 +102,11 @@ class Moments:
         return diag / max(self.total - 1, 1)
 
 
+def _gram(xc: np.ndarray) -> np.ndarray:
+    """``xc^T xc`` without copying ``xc`` (numpy hands ``a.T @ a`` on one buffer to BLAS ``syrk``)."""
+    return xc.T @ xc
+
+
 def _finite_rows(x: np.ndarray, missing: str, fill):
     """Apply the missing rule; returns (rows to use, missing counts, mean of finite values or None)."""
     n_all, d = x.shape
