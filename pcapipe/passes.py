@@ -165,7 +165,7 @@ class DataPasses:
             The decoded rows do not fit the memory budget.
         """
         layout = self._decode_layout(transform, 2)
-        parts = self.runner.compute(self._decode_graph(layout, transform), "decode", in_flight=layout.in_flight)
+        parts = list(self.runner.compute(self._decode_graph(layout, transform), "decode", in_flight=layout.in_flight))
         if not parts:
             return np.zeros((0, self.plan.n_features))
         out = np.empty((sum(p.shape[0] for p in parts), self.plan.n_features),
