@@ -173,3 +173,79 @@ def test_both_methods_agree_under_the_limit(runs):
     # error by r^2 / gap ~ (2e-5)^2 / 5 ~ 1e-10, i.e. ~2e-11 relative (quadratic
     # residual bound, Parlett, The Symmetric Eigenvalue Problem, ch. 11; from memory)
     np.testing.assert_allclose(runs["matrix-free"][2], runs["covariance"][2], rtol=1e-9)
+
+
+# ---------------------------------------------------------------- pyarrow's default 1Mi-row row groups
+#
+# One file as `pyarrow.parquet.write_table` writes it by default: row groups of 1Mi rows, 1 MiB data
+# pages and a 1 MB dictionary page per column.  Streaming one row group holds ~2.7 MB of pyarrow
+# buffers per column whatever the batch size (measured, DEVELOPERS.md "Memory"), so with 160 columns
+# one task needs ~450 MB and two at once ~900 MB: under memory_limit = "256MiB" x 2 workers the
+# planner must run the row groups one at a time (each with both cores), and the peak must stay
+# within workers x memory_limit + layout.FIXED_OVERHEAD.
+
+BIG_ROWS, BIG_COLS, BIG_LIMIT_MIB = 2 * 1024 * 1024, 160, 256
+
+_TWO_STREAMS = """
+import sys, threading, numpy as np, pyarrow.parquet as pq
+def stream(rg):
+    pf = pq.ParquetFile(sys.argv[1], pre_buffer=False, buffer_size=1 << 16)
+    for b in pf.iter_batches(batch_size=6553, row_groups=[rg], use_threads=False):
+        x = np.empty((b.num_rows, b.num_columns), order="F")
+        for j, c in enumerate(b.columns):
+            x[:, j] = c.to_numpy()
+threads = [threading.Thread(target=stream, args=(rg,)) for rg in (0, 1)]
+[t.start() for t in threads]
+[t.join() for t in threads]
+"""
+
+
+@pytest.fixture(scope="module")
+def default_row_groups(tmp_path_factory):
+    directory = tmp_path_factory.mktemp("pyarrow-default")
+    rng = np.random.default_rng(5)
+    cols = {f"c{j:03d}": rng.standard_normal(BIG_ROWS, dtype=np.float32) + j for j in range(BIG_COLS)}
+    pq.write_table(pa.table(cols), directory / "data.parquet")  # pyarrow's defaults, on purpose
+    md = pq.read_metadata(directory / "data.parquet")
+    assert md.num_row_groups == 2 and md.row_group(0).num_rows == 1024 * 1024
+    return directory
+
+
+def _bound_big(baseline: float) -> float:
+    from pcapipe.layout import FIXED_OVERHEAD
+
+    # the fixed overhead includes the imports' baseline (~140 MiB), so this is generous by it;
+    # what it must catch is the second task's ~450 MB
+    return 2 * BIG_LIMIT_MIB + FIXED_OVERHEAD / 2**20
+
+
+@pytest.mark.slow
+def test_two_row_groups_at_once_would_exceed_the_bound(default_row_groups, baseline_mib, tmp_path):
+    """The control: what the planner avoids does break the bound."""
+    peak, _ = _peak_rss_mib(["-c", _TWO_STREAMS, default_row_groups / "data.parquet"], tmp_path, "two")
+    assert peak > _bound_big(baseline_mib), peak
+
+
+@pytest.mark.slow
+def test_default_row_groups_stay_within_the_budget(default_row_groups, baseline_mib, tmp_path):
+    cfg = tmp_path / "run.toml"
+    cfg.write_text(f"""
+[input]
+paths = ["{default_row_groups}/*.parquet"]
+[model]
+components = 3
+method = "covariance"
+[compute]
+scheduler = "threads"
+workers = 2
+memory_limit = "{BIG_LIMIT_MIB}MiB"
+progress = false
+[output]
+directory = "{tmp_path / 'out'}"
+scores = false
+report = false
+""")
+    peak, proc = _peak_rss_mib(["-m", "pcapipe", "run", "-q", cfg], tmp_path, "run")
+    with open(tmp_path / "out" / "manifest.json") as f:
+        assert json.load(f)["n_samples"] == BIG_ROWS
+    assert peak <= _bound_big(baseline_mib), (peak, proc.stderr)
