@@ -79,7 +79,7 @@ def test_float32_column_with_a_large_mean_is_centred_in_float64(tmp_path, rng):
     ref = x.astype(np.float64)  # numpy float64 reference on the stored float32 values
     ref_c = ref - ref.mean(axis=0)
     values = np.linalg.eigvalsh(np.cov(ref, rowvar=False))[::-1]
-    np.testing.assert_allclose(res.explained_variance.to_numpy()[:3], values, rtol=1e-9)
+    np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:3], values, rtol=1e-9)
     scores = res.scores().compute()[["PC1", "PC2", "PC3"]].to_numpy()
     np.testing.assert_allclose(np.abs(scores), np.abs(ref_c @ res.loadings.to_numpy()), rtol=1e-9, atol=1e-9)
 
@@ -148,9 +148,9 @@ def test_one_row_group_results_do_not_depend_on_the_scheduler(one_row_group, tmp
     res = pcapipe.run(make_config(str(d / "*.parquet"), tmp_path / "run", model={"components": 3},
                                   compute={**compute, "progress": False}))
     if compute.get("memory_limit") == "48MiB":  # same batches: bit-identical
-        np.testing.assert_array_equal(res.explained_variance.to_numpy(), ref.explained_variance.to_numpy())
+        np.testing.assert_array_equal(res.spectrum["eigenvalue"].to_numpy(), ref.spectrum["eigenvalue"].to_numpy())
     # against numpy in float64
-    np.testing.assert_allclose(res.explained_variance.to_numpy()[:3],
+    np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:3],
                                np.linalg.eigvalsh(np.cov(x, rowvar=False))[::-1][:3], rtol=1e-10)
 
 

@@ -247,5 +247,5 @@ report = false
 """)
     peak, proc = _peak_rss_mib(["-m", "pcapipe", "run", "-q", cfg], tmp_path, "run")
     with open(tmp_path / "out" / "manifest.json") as f:
-        assert json.load(f)["n_samples"] == BIG_ROWS
+        assert json.load(f)["rows"] == BIG_ROWS
     assert peak <= _bound_big(baseline_mib), (peak, proc.stderr)
