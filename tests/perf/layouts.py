@@ -203,6 +203,7 @@ def main(argv=None) -> int:
     ap.add_argument("--scratch", default=os.path.join(tempfile.gettempdir(), "pcapipe-layouts"))
     ap.add_argument("--code", default=REPO, help="the pcapipe checkout to measure")
     ap.add_argument("--timeout", type=float, default=1800)
+    ap.add_argument("--generate-only", action="store_true", help="write the data, run nothing")
     args = ap.parse_args(argv)
     scale = 10 if args.quick else 1
     root = os.path.join(args.scratch, "quick" if args.quick else "full")
@@ -213,12 +214,16 @@ def main(argv=None) -> int:
         if case == "small":
             files = 5000 // scale
             _generate_small(root, files, print)
+            if args.generate_only:
+                continue
             for layout in ("files-many", "files-ten"):
                 _bench_layout(case, layout, os.path.join(root, "small", layout, "*.parquet"), 64, False, env,
                               args.scratch, rows, args.timeout)
             continue
         n, d, dtype, vector = SHAPES[case]
         _generate(root, case, n // scale, d, dtype, vector, print)
+        if args.generate_only:
+            continue
         for layout in args.layouts.split(","):
             _bench_layout(case, layout, os.path.join(root, case, layout, "*.parquet"), d, vector, env,
                           args.scratch, rows, args.timeout)
