@@ -119,7 +119,7 @@ MEMORY_UNITS: dict[str, int] = {
 }
 # Workers of one local scheduler: more than any workstation has cores (a typo guard).
 MAX_WORKERS = 1024
-# Per worker: one decoded batch is at least 1 MiB (reader.batch_rows_for).
+# Per worker: one decoded batch is at least 1 MiB (layout.batch_rows_for).
 MIN_MEMORY = 1 << 20
 # key -> (test, requirement); message "<value> <requirement>; e.g. <example>".
 # NaN fails every comparison, so it is rejected by each float test.

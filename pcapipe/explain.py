@@ -19,7 +19,7 @@ import pyarrow.parquet as pq
 
 from .errors import InputError
 from .monitor import contributions
-from .reader import table_to_array
+from .reader import batch_to_array
 
 __all__ = ["contributions_frame", "read_rows", "extreme_rows", "explain_rows", "top_features"]
 
@@ -43,7 +43,7 @@ def contributions_frame(result, df: pd.DataFrame) -> pd.DataFrame:
         raise InputError(f"contributions: the feature columns cannot be read as numbers ({e})") from e
     _check_schema(pr, table.schema, "contributions")
     t = pr.transform
-    x = table_to_array(table, pr.spec, "contributions", t.shift, t.inv_scale)
+    x = batch_to_array(table, pr.spec, "contributions", t.shift, t.inv_scale)
     try:
         x, ok = prepare_rows(x, t)
     except ValueError as e:
