@@ -38,7 +38,9 @@ def job_identity(cfg, plan) -> dict:
     """What must not change between an interrupted run and its resumption."""
     d = config_to_dict(cfg)
     return {"input": d["input"], "model": d["model"], "scores": d["output"]["scores"],
-            "inputs": plan.inputs_record()}
+            "inputs": plan.inputs_record(),
+            # the table's contents, not only its name (model.feature_weights)
+            "feature_weights": list(plan.feature_weights) if plan.feature_weights is not None else None}
 
 
 def _save_npz(path: str, arrays: dict) -> None:
@@ -104,6 +106,9 @@ class Checkpoint:
                         f"--resume: {key}.{name} changed since the interrupted run "
                         f"({saved[key].get(name)!r} -> {value!r}); restore it, or run without --resume"
                     )
+        if saved.get("feature_weights") != now["feature_weights"]:
+            raise ResumeError("--resume: the weights in the model.feature_weights table changed since the "
+                              "interrupted run; restore the table, or run without --resume")
         if saved["scores"] != now["scores"]:
             raise ResumeError("--resume: output.scores changed since the interrupted run; restore it, "
                               "or run without --resume")

@@ -247,3 +247,20 @@ def test_checkpoint_keeps_weight_sums(tmp_path, rng):
     assert (back.weight, back.weight2) == (m.weight, m.weight2)
     np.testing.assert_array_equal(back.valid_weight, m.valid_weight)
     np.testing.assert_array_equal(back.m2, m.m2)
+
+
+def test_resume_refuses_a_changed_feature_weight_table(tmp_path, rng):
+    from pcapipe.checkpoint import job_identity
+    from pcapipe.engine import prepare
+    from pcapipe.errors import ResumeError
+
+    write_parquet(tmp_path / "d", _data(rng, n=50, d=3))
+    table = _table(tmp_path / "fw.csv", ["f0", "f1", "f2"], [1.0, 2.0, 1.0])
+    cfg = make_config(str(tmp_path / "d"), tmp_path / "r", model={"components": 2, "feature_weights": table})
+    p = prepare(cfg)
+    Checkpoint(str(tmp_path / "ck"), job_identity(p.cfg, p.plan)).save("moments", passes=1)
+    Checkpoint(str(tmp_path / "ck"), job_identity(p.cfg, p.plan)).load("hint")  # same table: accepted
+    _table(tmp_path / "fw.csv", ["f0", "f1", "f2"], [1.0, 2.5, 1.0])  # same name, other weights
+    p = prepare(cfg)
+    with pytest.raises(ResumeError, match="feature_weights table changed"):
+        Checkpoint(str(tmp_path / "ck"), job_identity(p.cfg, p.plan)).load("hint")
