@@ -48,6 +48,8 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("run_dir", metavar="RUN_DIR")
     d.add_argument("--top", type=int, default=5, help="loadings shown per component (default 5)")
     d.add_argument("--json", action="store_true", help="machine-readable output")
+    d.add_argument("--beyond", type=int, default=10, metavar="N",
+                   help="eigenvalues shown past the k retained ones (default 10; all are in spectrum.parquet)")
 
     pr = sub.add_parser("project", parents=[common], help="scores of new Parquet files")
     pr.add_argument("run_dir", metavar="RUN_DIR")
@@ -147,7 +149,7 @@ def _cmd_describe(args) -> int:
     if args.json:
         print(json.dumps(describe_json(res, args.top), indent=2))
     else:
-        print(describe_text(res, args.top))
+        print(describe_text(res, args.top, args.beyond))
     return 0
 
 

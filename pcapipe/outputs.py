@@ -16,7 +16,7 @@ from .config import config_to_dict, resolve_path
 from .weighted import weights_record
 from .writer import FORMAT_VERSION
 
-__all__ = ["build_tables", "spectrum_table", "manifest_for", "component_names", "package_versions"]
+__all__ = ["build_tables", "spectrum_table", "variance_record", "manifest_for", "component_names", "package_versions"]
 
 
 def component_names(k: int) -> list[str]:
@@ -50,7 +50,8 @@ def build_tables(plan, m, res, vectors, std, scale_used, total_variance) -> dict
     """spectrum.parquet, loadings.parquet and features.parquet as Arrow tables."""
     k = vectors.shape[1]
     names = component_names(k)
-    spectrum = spectrum_table(res.values, res.residual_norms, res.converged, res.gaps, np.ones(k, bool),
+    s = res.spectrum()
+    spectrum = spectrum_table(s["values"], s["residuals"], s["converged"], s["gaps"], s["retained"],
                               m.total, total_variance)  # weighted rows: the sum of the (frequency) weights
     loadings = pa.table({"feature": list(plan.features), **{nm: vectors[:, j] for j, nm in enumerate(names)}})
     features = pa.table({
@@ -62,6 +63,26 @@ def build_tables(plan, m, res, vectors, std, scale_used, total_variance) -> dict
         "weight": np.ones(plan.n_features) if plan.feature_weights is None else np.asarray(plan.feature_weights),
     })
     return {"spectrum.parquet": spectrum, "loadings.parquet": loadings, "features.parquet": features}
+
+
+def variance_record(res, total_variance: float) -> dict:
+    """How the total variance (the trace) splits: retained, listed in spectrum.parquet, not listed.
+
+    ``not_listed`` is the variance left unexplained by every eigenvalue listed
+    (0 up to rounding when the method listed all d); it is what a reader of
+    the spectrum cannot see.
+    """
+    values = res.spectrum()["values"]
+    k = res.values.size
+    total = float(total_variance)
+    listed = float(values.sum())
+    rest = total - listed
+    if abs(rest) <= 1e-12 * max(abs(total), np.finfo(float).tiny) * max(1, values.size):
+        rest = 0.0  # rounding of a complete spectrum, not variance
+    share = (lambda v: v / total if total > 0 else float("nan"))
+    return {"total": total, "retained": float(values[:k].sum()), "listed": listed, "not_listed": rest,
+            "retained_share": share(float(values[:k].sum())), "not_listed_share": share(rest),
+            "eigenvalues_listed": int(values.size), "eigenvalues_retained": int(k)}
 
 
 def package_versions(own: str) -> dict:
@@ -96,6 +117,7 @@ def manifest_for(p, m, res, choice, total_variance, passes, cache, info, timings
         "features": int(p.plan.n_features),
         "components": int(res.values.size),
         "total_variance": float(total_variance),
+        "variance": variance_record(res, total_variance),
         "method": choice.method,
         "method_reason": choice.reason,
         "method_estimates": choice.estimates,

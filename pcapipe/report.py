@@ -21,6 +21,8 @@ import logging
 import math
 import os
 import re
+from time import perf_counter
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -28,20 +30,21 @@ import pyarrow.parquet as pq
 
 from .config import format_size
 from .errors import InputError, OutputError
-from .formats import SPECTRUM_HEADERS, spectrum_cells
 from .figures import (BAR_COMPONENTS, LEVELS, fig_convergence, fig_cumulative, fig_heatmap, fig_loadings,
-                      fig_scatter, fig_scree, png_bytes)
+                      fig_scatter, fig_scree, png_bytes, scree_limit)
+from .formats import FLAG_NOTES, SPECTRUM_HEADERS, flag, percent, sig, spectrum_cells, spectrum_shown
 from .weighted import weights_text
 from .writer import partial_dir_for, write_json_atomic
 
-__all__ = ["build_report", "write_report", "report_figures", "sample_scores", "summary_rows",
+__all__ = ["build_report", "write_report", "report_figures", "sample_scores", "summary_rows", "FIGURES",
+           "FigureContext", "first_solver_pass",
            "INSTALL_NOTE", "SAMPLE_ROWS", "HEATMAP_MAX_FEATURES"]
 
 log = logging.getLogger("pcapipe")
 
 INSTALL_NOTE = "install the plot extra: pip install 'pcapipe[plot]'"
 SAMPLE_ROWS = 5000  # enough points to see structure; reading them costs ~nothing
-HEATMAP_MAX_FEATURES = 40  # beyond this the feature names no longer fit beside a heatmap
+HEATMAP_MAX_FEATURES = 100  # beyond this the feature names no longer fit beside a heatmap (6-point labels)
 _MAX_SAMPLE_GROUPS = 64  # row groups opened for the sample
 
 
@@ -115,6 +118,16 @@ def summary_rows(manifest: dict) -> list[tuple[str, str]]:
     ]
 
 
+def with_report_time(manifest: dict, seconds: float) -> dict:
+    """A copy of ``manifest`` whose timings count ``seconds`` for the report (replacing an earlier one)."""
+    timings = dict(manifest.get("timings", {}))
+    old = timings.get("report_seconds", 0.0)
+    if "total_seconds" in timings:
+        timings["total_seconds"] = round(timings["total_seconds"] - old + seconds, 4)
+    timings["report_seconds"] = round(seconds, 4)
+    return dict(manifest, timings=timings)
+
+
 def _check_color_by(manifest: dict, color_by: str | None) -> None:
     if color_by is None:
         return
@@ -127,44 +140,133 @@ def _check_color_by(manifest: dict, color_by: str | None) -> None:
                          "output.scores = false")
 
 
+@dataclass
+class FigureContext:
+    """What every figure builder may use: the run and the options of this report."""
+
+    directory: str
+    manifest: dict
+    result: object  # pcapipe.result.Result
+    color_by: str | None
+
+    @property
+    def spectrum(self) -> pd.DataFrame:
+        return self.result.spectrum
+
+    @property
+    def retained(self) -> pd.DataFrame:
+        return self.spectrum[self.spectrum["retained"]]
+
+    @property
+    def k(self) -> int:
+        return int(self.spectrum["retained"].sum())
+
+    @property
+    def d(self) -> int:
+        return int(self.manifest["features"])
+
+    @property
+    def scaled(self) -> bool:
+        return bool(self.manifest["config"]["model"].get("scale"))
+
+
+def _std_error_note(ctx: FigureContext) -> str:
+    n = ctx.manifest.get("rows") or 0
+    if n <= 0:
+        return ""
+    rel = math.sqrt(2.0 / n)
+    size = (f"{percent(rel, 2)} of each eigenvalue" + (", smaller than the markers" if rel < 0.02 else ""))
+    return (f" Error bars: std_error = eigenvalue \u00d7 sqrt(2/n) = {size} at n = {n} (North et al. 1982); "
+            "this assumes independent rows: autocorrelated rows (time series, telemetry) carry fewer "
+            "independent observations, so the true errors are larger.")
+
+
+def _scree(ctx: FigureContext):
+    spec = ctx.spectrum
+    drawn = scree_limit(spec)
+    known = (f"all {ctx.d} eigenvalues" if len(spec) == ctx.d
+             else f"the {len(spec)} eigenvalues the method determined (of {ctx.d})")
+    listed = known if drawn == len(spec) else f"the first {drawn} of {known}"
+    estimate = "; crosses: estimates beyond k (Ritz values, at most the eigenvalue)" \
+        if (~spec["converged"] & ~spec["retained"]).any() else ""
+    return (fig_scree(spec, float(ctx.manifest["total_variance"]), ctx.scaled, ctx.d),
+            f"Eigenvalues, {listed}: filled, the k = {ctx.k} retained; open, the rest{estimate}. "
+            "Dashed: broken-stick expectation (Frontier 1976; Jackson 1993)"
+            + ("; dotted: eigenvalue 1 (Kaiser)" if ctx.scaled else "") + "." + _std_error_note(ctx))
+
+
+def _cumulative(ctx: FigureContext):
+    return (fig_cumulative(ctx.spectrum), f"Share of total variance per component (blue: the k = {ctx.k} "
+            "retained) and cumulated; dotted lines at " + ", ".join(f"{v:.0%}" for v in LEVELS) + ".")
+
+
+def _loadings(ctx: FigureContext):
+    return (fig_loadings(ctx.result.loadings), f"Features of largest |loading| for the first "
+            f"{min(ctx.k, BAR_COMPONENTS)} component(s); red positive, blue negative, one scale for all panels; "
+            f"dotted: \u00b11/\u221ad = \u00b1{1 / math.sqrt(max(ctx.d, 1)):.2f}, the loading of every feature if all "
+            "counted alike.")
+
+
+def _heatmap(ctx: FigureContext):
+    if ctx.d > HEATMAP_MAX_FEATURES:
+        return f"no loadings heatmap: {ctx.d} features are more than {HEATMAP_MAX_FEATURES}"
+    return fig_heatmap(ctx.result.loadings), "All loadings (unit-norm eigenvectors); red positive, blue negative."
+
+
+def _scatter(ctx: FigureContext):
+    if not ctx.manifest.get("scores", {}).get("written"):
+        return "no scores scatter: the run was made with output.scores = false"
+    if ctx.k < 2:
+        return "no scores scatter: the run has a single component"
+    sample = sample_scores(ctx.directory, ["PC1", "PC2", *([ctx.color_by] if ctx.color_by else [])])
+    seed = int(ctx.manifest["config"]["model"].get("seed", 0))
+    return (fig_scatter(sample, ctx.retained["share"].to_numpy()[:2], ctx.color_by, seed=seed),
+            f"PC1 against PC2 for {len(sample)} rows from a spread of row groups "
+            f"(of {ctx.manifest['scores'].get('rows')} scored rows), drawn in random order.")
+
+
+def first_solver_pass(manifest: dict) -> int | None:
+    """The pass over the data of the solver's first iteration (matrix-free), else None (in memory)."""
+    if manifest.get("method") != "matrix-free":
+        return None
+    applications = int(manifest.get("solver", {}).get("operator_applications", 0))
+    after = 1 if manifest.get("scores", {}).get("written") else 0  # the scores pass comes last
+    return int(manifest.get("passes_over_data", 0)) - after - applications + 1
+
+
+def _convergence(ctx: FigureContext):
+    solver = ctx.manifest.get("solver", {})
+    history = solver.get("residual_history") or []
+    if not history:
+        return "no convergence figure: the method found the eigenvalues without iterating (no residual history)"
+    first = first_solver_pass(ctx.manifest)
+    before = "pass 1: moments" + (", pass 2: decoding the blocks into worker memory" if first == 3 else "")
+    axis = (f"per pass over the data ({before})" if first
+            else "per iteration on the in-memory matrix (built in the single pass over the data)")
+    return (fig_convergence(history, solver.get("tolerance"), first_pass=first),
+            f"Relative residual ||C v - \u03b8 v|| / \u03b8\u2081 of each retained component {axis}; "
+            "a component is done below the tolerance.")
+
+
+# The report's figures in page order: name -> builder(ctx) returning (Figure, caption), or a note
+# saying why the figure is left out.  Other modules add theirs with FIGURES[name] = builder.
+FIGURES = {"scree": _scree, "cumulative": _cumulative, "loadings": _loadings, "heatmap": _heatmap,
+           "scatter": _scatter, "convergence": _convergence}
+
+
 def report_figures(directory: str, manifest: dict, color_by: str | None = None):
     """The report's figures as ``{name: (Figure, caption)}``, plus notes on the ones left out."""
     from .result import Result
 
     _check_color_by(manifest, color_by)
-    res = Result(directory, manifest)
-    spec, load = res.spectrum, res.loadings
-    comp = spec[spec["retained"]]
-    scaled = bool(manifest["config"]["model"].get("scale"))
-    d, k = int(manifest["features"]), len(comp)
+    ctx = FigureContext(directory, manifest, Result(directory, manifest), color_by)
     figs, notes = {}, []
-    figs["scree"] = (fig_scree(comp, float(manifest["total_variance"]), scaled, d),
-                     "Eigenvalues with std-error bars (North et al. 1982); dashed: broken-stick expectation "
-                     "(Frontier 1976; Jackson 1993)" + ("; dotted: eigenvalue 1 (Kaiser)" if scaled else "") + ".")
-    figs["cumulative"] = (fig_cumulative(comp), "Share of total variance per component and cumulated; "
-                          "dotted lines at " + ", ".join(f"{v:.0%}" for v in LEVELS) + ".")
-    figs["loadings"] = (fig_loadings(load), f"Features of largest |loading| for the first "
-                        f"{min(k, BAR_COMPONENTS)} component(s); blue positive, red negative.")
-    if d <= HEATMAP_MAX_FEATURES:
-        figs["heatmap"] = (fig_heatmap(load), "All loadings (unit-norm eigenvectors).")
-    else:
-        notes.append(f"no loadings heatmap: {d} features are more than {HEATMAP_MAX_FEATURES}")
-    if not manifest.get("scores", {}).get("written"):
-        notes.append("no scores scatter: the run was made with output.scores = false")
-    elif k < 2:
-        notes.append("no scores scatter: the run has a single component")
-    else:
-        sample = sample_scores(directory, ["PC1", "PC2", *([color_by] if color_by else [])])
-        figs["scatter"] = (fig_scatter(sample, comp["share"].to_numpy()[:2], color_by),
-                           f"PC1 against PC2 for {len(sample)} rows from a spread of row groups "
-                           f"(of {manifest['scores'].get('rows')} scored rows).")
-    history = manifest.get("solver", {}).get("residual_history") or []
-    if history:
-        figs["convergence"] = (fig_convergence(history, manifest["solver"].get("tolerance")),
-                               "Relative residual ||C v - \u03b8 v|| / \u03b8\u2081 per solver iteration; "
-                               "a component is done below the tolerance.")
-    else:
-        notes.append("no convergence figure: the manifest holds no residual history")
+    for name, builder in FIGURES.items():
+        out = builder(ctx)
+        if isinstance(out, str):
+            notes.append(out)
+        elif out is not None:
+            figs[name] = out
     return figs, notes
 
 
@@ -177,6 +279,7 @@ table{border-collapse:collapse;font-size:.9rem} th,td{padding:.25rem .6rem;borde
 text-align:left;vertical-align:top} td.num{text-align:right;font-variant-numeric:tabular-nums}
 figure{margin:1.5rem 0} img{max-width:100%;height:auto;border:1px solid #eee}
 figcaption{font-size:.85rem;color:#555} .bad{color:#b00;font-weight:bold} .notes{color:#555;font-size:.9rem}
+tr.rule td{border-bottom:2px solid #888;font-size:.8rem;color:#555;text-align:center}
 """
 
 
@@ -185,14 +288,33 @@ def _png_size(data: bytes) -> tuple[int, int]:
     return int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
 
 
-def _spectrum_table(spectrum: pd.DataFrame) -> str:
-    head = "".join(f"<th>{h}</th>" for h in ("component", *SPECTRUM_HEADERS, "converged"))
+def _spectrum_table(spectrum: pd.DataFrame, manifest: dict) -> str:
+    shown, hidden = spectrum_shown(spectrum)
+    k = int(spectrum["retained"].sum())
+    heads = ("component", *SPECTRUM_HEADERS, "converged")
+    head = "".join(f"<th>{h}</th>" for h in heads)
     rows = []
-    for (name, r), cells in zip(spectrum.iterrows(), spectrum_cells(spectrum)):
-        ok = bool(r.get("converged", True))
-        rows.append(f"<tr><th>{html.escape(str(name))}</th>" + "".join(f'<td class="num">{c}</td>' for c in cells)
-                    + ("<td>yes</td>" if ok else '<td class="bad">no</td>') + "</tr>")
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+    for i, ((name, r), cells) in enumerate(zip(shown.iterrows(), spectrum_cells(shown))):
+        if i == k:
+            rows.append(f'<tr class="rule"><td colspan="{len(heads)}">k = {k} retained above; not retained '
+                        "below</td></tr>")
+        mark = flag(r)
+        state = {"": "<td>yes</td>", "*": '<td class="bad">no</td>', "~": "<td>estimate</td>"}[mark]
+        rows.append(f"<tr><th>{html.escape(str(name))}</th>" + "".join(f'<td class="num">{c}</td>' for c in cells[:-1])
+                    + f"<td>{cells[-1]}</td>" + state + "</tr>")
+    notes = []
+    if hidden:
+        notes.append(f"{hidden} more eigenvalue(s) listed in spectrum.parquet.")
+    v = manifest.get("variance") or {}
+    if v.get("not_listed"):
+        notes.append(f"Variance not listed (beyond the eigenvalues the method determined): "
+                     f"{sig(v['not_listed'], 3)}, {percent(v['not_listed_share'], 3)} of the total.")
+    elif v:
+        notes.append(f"All {v.get('eigenvalues_listed')} eigenvalues are listed; they sum to the total variance.")
+    if "~" in {flag(r) for _, r in shown.iterrows()}:
+        notes.append(FLAG_NOTES["~"].lstrip("~ ").capitalize() + ": marked estimate.")
+    foot = f'<p class="notes">{" ".join(html.escape(n) for n in notes)}</p>' if notes else ""
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>{foot}"
 
 
 def _page(title: str, manifest: dict, components: pd.DataFrame, images, notes, monitor_html: str = "") -> str:
@@ -210,8 +332,9 @@ def _page(title: str, manifest: dict, components: pd.DataFrame, images, notes, m
             f"{html.escape(title)}</title><style>{_CSS}</style></head><body>"
             f"<h1>pcapipe report: {html.escape(title)}</h1>"
             f"<p>{manifest.get('rows')} rows \u00d7 {manifest.get('features')} features, "
-            f"{manifest.get('components')} components, method {html.escape(str(manifest.get('method')))}</p>"
-            f"{state}<h2>Spectrum</h2>{_spectrum_table(components)}<h2>Figures</h2>{''.join(figures)}"
+            f"k = {manifest.get('components')} components retained of {len(components)} eigenvalues listed, "
+            f"method {html.escape(str(manifest.get('method')))}</p>"
+            f"{state}<h2>Spectrum</h2>{_spectrum_table(components, manifest)}<h2>Figures</h2>{''.join(figures)}"
             + (f"<h2>Monitoring</h2>{monitor_html}" if monitor_html else "")
             + (f'<ul class="notes">{note_list}</ul>' if notes else "")
             + f"<h2>Run</h2><table>{summary}</table></body></html>\n")
@@ -267,11 +390,13 @@ def build_report(directory: str, manifest: dict, color_by: str | None = None, ti
 
     from .report_monitor import monitor_section
 
+    t0 = perf_counter()
     figs, notes = report_figures(directory, manifest, color_by)
     monitor_figs, monitor_html, monitor_notes = monitor_section(directory, manifest, time)
     figs.update(monitor_figs)
     notes += monitor_notes
     images = {name: (png_bytes(fig), caption) for name, (fig, caption) in figs.items()}
+    manifest = with_report_time(manifest, perf_counter() - t0)
     for name, (data, _) in images.items():
         _write_file(directory, f"{name}.png", data)
     page = _page(_title(directory), manifest, Result(directory, manifest).spectrum, images, notes, monitor_html)

@@ -59,6 +59,12 @@ class SolverResult:
     row per iteration with the relative residual of each wanted pair (NaN
     before a pair appears); ``gaps`` are relative distances to the nearest
     other Ritz value, the quantity that limits how fast a pair converges.
+
+    Beyond the k retained pairs, ``extra_values`` (largest first) are the
+    other eigenvalues the method determined (the remaining Ritz values of the
+    block here; every eigenvalue for the covariance method), with
+    ``extra_residuals`` (absolute, NaN when not computed) and
+    ``extra_converged``.  :meth:`spectrum` lists both together.
     """
 
     values: np.ndarray
@@ -71,6 +77,21 @@ class SolverResult:
     history: np.ndarray
     depth: int
     block: int
+    extra_values: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    extra_residuals: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    extra_converged: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
+
+    def spectrum(self) -> dict:
+        """Every eigenvalue determined, largest first: ``values``, ``residuals``,
+        ``converged``, ``gaps`` (relative to the largest, over every value listed)
+        and ``retained`` (True for the k pairs whose vectors are kept)."""
+        values = np.concatenate([self.values, self.extra_values])
+        ref = max(float(values[0]), np.finfo(float).tiny) if values.size else 1.0
+        return {"values": values,
+                "residuals": np.concatenate([self.residual_norms, self.extra_residuals]),
+                "converged": np.concatenate([self.converged, self.extra_converged]).astype(bool),
+                "gaps": np.array([_gap(v, values) / ref for v in values]),
+                "retained": np.arange(values.size) < self.values.size}
 
 
 @dataclass
@@ -291,8 +312,11 @@ class BlockPowerSolver:
         converged = resid <= self.tolerance * ref
         every = np.sort(np.concatenate([st.locked_values, theta]))[::-1]
         gaps = np.array([_gap(v, every) / ref for v in values])
+        # the rest of the block: estimates from below (Cauchy interlacing) unless converged
+        extra = slice(want, want + max(self.oversample, 0))
         return SolverResult(values, vectors, resid, converged, gaps, st.iterations, st.matvecs,
-                            np.array(st.history, dtype=float), self.depth, self.block)
+                            np.array(st.history, dtype=float), self.depth, self.block,
+                            theta[extra], rnorm[extra], rnorm[extra] <= self.tolerance * ref)
 
 
 def _gap(value: float, every: np.ndarray) -> float:

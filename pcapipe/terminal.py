@@ -9,7 +9,7 @@ import numpy as np
 from .compute import _cores, physical_memory
 from .config import format_size, parse_memory
 from .errors import InputError
-from .formats import SPECTRUM_HEADERS, spectrum_cells
+from .formats import BEYOND, SPECTRUM_HEADERS, flag, FLAG_NOTES, percent, sig, spectrum_cells, spectrum_shown
 from .operators import choose_method
 from .weighted import weights_text
 
@@ -144,13 +144,31 @@ def describe_json(res, top: int) -> dict:
 _WIDTHS = (12, 10, 12, 11, 11, 10)  # right-aligned columns after the component name
 
 
-def spectrum_table(res) -> str:
-    """The spectrum as aligned text: one row per eigenvalue, ``*`` after one that did not converge."""
+def spectrum_table(res, beyond: int = BEYOND) -> str:
+    """The spectrum as aligned text: the retained rows, a rule, then ``beyond`` more eigenvalues.
+
+    A row ends in ``*`` (retained, did not converge) or ``~`` (an estimate beyond k).
+    """
     spec = res.spectrum
-    lines = [f"{'component':<10}" + "".join(f"{h:>{w}}" for h, w in zip(SPECTRUM_HEADERS, _WIDTHS))]
-    for (name, r), cells in zip(spec.iterrows(), spectrum_cells(spec)):
-        flag = "" if bool(r.get("converged", True)) else " *"
-        lines.append(f"{name:<10}" + "".join(f"{c:>{w}}" for c, w in zip(cells, _WIDTHS)) + flag)
+    shown, hidden = spectrum_shown(spec, beyond)
+    k = int(spec["retained"].sum())
+    header = f"{'component':<10}" + "".join(f"{h:>{w}}" for h, w in zip(SPECTRUM_HEADERS, _WIDTHS))
+    lines = [header]
+    for i, ((name, r), cells) in enumerate(zip(shown.iterrows(), spectrum_cells(shown))):
+        if i == k:
+            lines.append(f"{'-' * 3} k = {k} retained above; not retained below {'-' * 3}")
+        mark = flag(r)
+        row = f"{name:<10}" + "".join(f"{c:>{w}}" for c, w in zip(cells, _WIDTHS)) + (f" {mark}" if mark else "")
+        lines.append(row.rstrip())
+    v = res.manifest.get("variance", {})
+    if hidden:
+        lines.append(f"... {hidden} more eigenvalue(s) in spectrum.parquet (describe --beyond {len(spec) - k} shows all)")
+    if v:
+        lines.append(f"variance not listed: {sig(v['not_listed'], 3)} ({percent(v['not_listed_share'], 3)} of the total)"
+                     if v.get("not_listed") else f"all {v.get('eigenvalues_listed')} eigenvalues listed: "
+                     "their sum is the total variance")
+    marks = {flag(r) for _, r in shown.iterrows()} - {""}
+    lines += [FLAG_NOTES[mk] for mk in sorted(marks)]
     return "\n".join(lines)
 
 
@@ -164,15 +182,17 @@ def _loadings_table(res, top: int) -> str:
     return "\n".join(lines)
 
 
-def describe_text(res, top: int) -> str:
-    """What ``pcapipe describe`` prints: a headline, the spectrum table and the top loadings."""
+def describe_text(res, top: int, beyond: int = BEYOND) -> str:
+    """What ``pcapipe describe`` prints: a headline, the spectrum table (``beyond`` eigenvalues past k)
+    and the top loadings."""
     _check_top(top)
     m = res.manifest
     model = m["config"]["model"]
     kind = "correlation PCA (scaled)" if model.get("scale") else "covariance PCA"
     if not model.get("center", True):
         kind += ", not centred"
-    bad = [str(pc) for pc, ok in res.spectrum["converged"].items() if not ok]
+    spec = res.spectrum
+    bad = [str(pc) for pc, ok in spec.loc[spec["retained"], "converged"].items() if not ok]
     state = "converged" if m["converged"] else f"NOT converged: {', '.join(bad) or 'see the manifest'}"
     parts = [
         res.directory,
@@ -182,10 +202,8 @@ def describe_text(res, top: int) -> str:
         f"tolerance {model.get('tolerance')} x the first eigenvalue",
         f"weights: {weights_text(m.get('weights'))}",
         "",
-        spectrum_table(res),
+        spectrum_table(res, beyond),
     ]
-    if bad:
-        parts.append("* did not reach the tolerance")
     if top:
         parts += ["", f"top {min(top, m['features'])} loadings per component "
                   "(correlation: of the feature with the component's scores)", _loadings_table(res, top)]

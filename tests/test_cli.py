@@ -75,7 +75,10 @@ def test_describe(quiet_run):
     assert proc.returncode == 0
     desc = run_cli("describe", out)
     assert desc.returncode == 0, desc.stderr
-    assert "PC1" in desc.stdout and "PC2" in desc.stdout and "PC3" not in desc.stdout
+    table = desc.stdout.split("--- k = 2 retained above; not retained below ---")
+    assert len(table) == 2  # the spectrum continues past k = 2, below the rule
+    assert "PC1" in table[0] and "PC2" in table[0] and "PC3" not in table[0]
+    assert "PC3" in table[1] and "PC5" in table[1]  # all 5 eigenvalues (covariance method)
     assert "60 rows x 5 features" in desc.stdout
 
 

@@ -11,6 +11,7 @@ import pytest
 import pcapipe
 from conftest import known_spectrum, make_config, run_cli, write_parquet
 from pcapipe.errors import InputError, NotConvergedWarning
+from pcapipe.formats import sig
 from pcapipe.terminal import check_report, describe_json, describe_text
 
 _COLUMNS = ["eigenvalue", "share", "cumulative_share", "residual", "std_error"]
@@ -35,10 +36,12 @@ def _table_rows(text):
     start = next(i for i, line in enumerate(lines) if line.split()[:2] == ["component", "eigenvalue"])
     rows = []
     for line in lines[start + 1:]:
+        if line.startswith("--- k = "):  # the rule between retained and not retained
+            continue
         if not re.match(r"PC\d+ ", line):
             break
         name, *values = line.split()
-        numbers = [float(v.rstrip("%")) / (100 if v.endswith("%") else 1) for v in values[:5]]
+        numbers = [np.nan if v == "-" else float(v.rstrip("%")) / (100 if v.endswith("%") else 1) for v in values[:5]]
         rows.append((name, numbers, values[5:]))
     return lines[start].split(), rows
 
@@ -52,7 +55,10 @@ def test_describe_table_matches_spectrum_parquet(run_dir):
     for (name, values, flags), (_, want) in zip(rows, table.iterrows()):
         assert flags == (["yes"] if want["retained"] else [])  # every component converged: no "*"
         for col, got in zip(_COLUMNS, values):
-            assert got == pytest.approx(want[col], rel=_PRINTED[col]), (name, col)
+            assert got == pytest.approx(want[col], rel=_PRINTED[col], nan_ok=True), (name, col)
+    assert len(rows) == 9 and table["retained"].sum() == 4  # every eigenvalue (covariance method), k = 4
+    assert "--- k = 4 retained above; not retained below ---" in text
+    assert "all 9 eigenvalues listed: their sum is the total variance" in text
 
 
 def test_describe_top_loadings_are_the_largest_in_loadings_parquet(run_dir):
@@ -84,7 +90,7 @@ def test_describe_json_matches_the_tables_and_is_strict_json(run_dir):
     assert [c["component"] for c in out["spectrum"]] == list(table["component"])
     for got, (_, want) in zip(out["spectrum"], table.iterrows()):
         for col in [*_COLUMNS, "retained", "converged"]:
-            assert got[col] == want[col]
+            assert got[col] == want[col] or (got[col] is None and np.isnan(want[col])), col  # NaN -> null
     assert out["components"] == 4 and out["scale"] is True and out["center"] is True
     for pc, items in out["top_loadings"].items():
         assert len(items) == 2
@@ -103,13 +109,19 @@ def test_describe_marks_components_that_did_not_converge(tmp_path):
                       model={"components": 4, "method": "matrix-free", "max_iterations": 1, "oversample": 1})
     with pytest.warns(NotConvergedWarning):
         res = pcapipe.run(cfg)
-    bad = [pc for pc, ok in res.spectrum["converged"].items() if not ok]
-    assert bad
+    spec = res.spectrum
+    bad = [pc for pc, ok in spec.loc[spec["retained"], "converged"].items() if not ok]
+    estimates = [pc for pc, ok in spec.loc[~spec["retained"], "converged"].items() if not ok]
+    assert bad and estimates == ["PC5"]  # oversample 1: one Ritz value beyond k, not converged
     text = describe_text(res, top=0)
     assert f"NOT converged: {', '.join(bad)}" in text
     _, rows = _table_rows(text)
     assert [name for name, _, flags in rows if flags[-1:] == ["*"]] == bad
-    assert "* did not reach the tolerance" in text
+    assert [name for name, _, flags in rows if flags[-1:] == ["~"]] == estimates
+    assert "* retained but did not reach the tolerance" in text and "~ an estimate" in text
+    rest = res.manifest["variance"]["not_listed"]
+    assert rest == pytest.approx(res.manifest["total_variance"] - spec["eigenvalue"].sum(), rel=1e-12)
+    assert f"variance not listed: {sig(rest, 3)}" in text
     assert "loadings per component" not in text  # top=0: no loadings section
 
 
@@ -123,7 +135,11 @@ def test_cli_describe_text_and_json(run_dir):
     assert done.returncode == 0, done.stderr
     assert done.stdout.startswith(run_dir)
     _, rows = _table_rows(done.stdout)
-    assert [r[0] for r in rows] == ["PC1", "PC2", "PC3", "PC4"]
+    assert [r[0] for r in rows] == [f"PC{i}" for i in range(1, 10)]
+    done = run_cli("describe", run_dir, "--top", "0", "--beyond", "2")
+    _, rows = _table_rows(done.stdout)
+    assert [r[0] for r in rows] == [f"PC{i}" for i in range(1, 7)]  # k = 4 and 2 beyond
+    assert "... 3 more eigenvalue(s) in spectrum.parquet (describe --beyond 5 shows all)" in done.stdout
     done = run_cli("describe", run_dir, "--json", "--top", "1")
     assert done.returncode == 0, done.stderr
     out = json.loads(done.stdout)

@@ -85,21 +85,34 @@ def test_broken_stick_shares(p, want):
     assert broken_stick(37).sum() == pytest.approx(1.0, rel=1e-14)
 
 
-def test_scree_has_eigenvalues_error_bars_broken_stick_and_kaiser(small, figures):
-    fig, _ = figures["scree"]
+def test_scree_shows_the_spectrum_beyond_k_with_error_bars_broken_stick_and_kaiser(small, figures):
+    fig, caption = figures["scree"]
     ax = fig.axes[0]
-    comp = small.spectrum[small.spectrum.retained]
-    bars = ax.containers[0]
-    data_line, _, (segments,) = bars.lines[0], bars.lines[1], bars.lines[2]
-    np.testing.assert_allclose(data_line.get_ydata(), comp["eigenvalue"], rtol=1e-15)
+    spec = small.spectrum
+    assert len(spec) == 8 and spec["retained"].sum() == 4  # covariance method: every eigenvalue, k = 4
+    kept = next(line for line in ax.lines if line.get_gid() == "points_retained")
+    rest = next(line for line in ax.lines if line.get_gid() == "points_not retained")
+    np.testing.assert_allclose(kept.get_ydata(), spec["eigenvalue"][:4], rtol=1e-15)
+    np.testing.assert_allclose(rest.get_ydata(), spec["eigenvalue"][4:], rtol=1e-15)
+    np.testing.assert_array_equal(rest.get_xdata(), np.arange(5, 9))
+    from matplotlib.container import ErrorbarContainer
+
+    (bars,) = [c for c in ax.containers if isinstance(c, ErrorbarContainer)]
+    (segments,) = bars.lines[2]
     half = np.array([abs(s[1, 1] - s[0, 1]) / 2 for s in segments.get_segments()])
-    np.testing.assert_allclose(half, comp["std_error"], rtol=1e-12)
+    np.testing.assert_allclose(half, spec["std_error"], rtol=1e-12)
     stick = next(line for line in ax.lines if line.get_gid() == "broken_stick")
     p, total = small.manifest["features"], small.manifest["total_variance"]
-    want = [sum(1 / j for j in range(i, p + 1)) / p * total for i in range(1, len(comp) + 1)]
+    want = [sum(1 / j for j in range(i, p + 1)) / p * total for i in range(1, len(spec) + 1)]
     np.testing.assert_allclose(stick.get_ydata(), want, rtol=1e-12)
     kaiser = next(line for line in ax.lines if line.get_gid() == "kaiser")
     assert list(kaiser.get_ydata()) == [1.0, 1.0]
+    marker = next(line for line in ax.lines if line.get_gid() == "k_marker")
+    assert list(marker.get_xdata()) == [4.5, 4.5]
+    assert fig.axes[1].get_yscale() == "log"
+    # the caption states the error bars' size and what they assume
+    assert "sqrt(2/n) = 1.3% of each eigenvalue" in caption  # sqrt(2 / 12000) = 0.0129
+    assert "independent rows" in caption and "all 8 eigenvalues" in caption
 
 
 def test_scree_of_a_covariance_pca_has_no_kaiser_line(wide):
@@ -107,20 +120,32 @@ def test_scree_of_a_covariance_pca_has_no_kaiser_line(wide):
     assert [line for line in figs["scree"][0].axes[0].lines if line.get_gid() == "kaiser"] == []
 
 
+def test_scree_of_a_partial_spectrum_says_what_is_not_listed(wide):
+    figs, _ = report_figures(wide.directory, wide.manifest)
+    fig, caption = figs["scree"]
+    spec = wide.spectrum
+    assert len(spec) == 3 + 2  # matrix-free: k = 3 retained and the oversample = 2 extra Ritz values
+    assert "the 5 eigenvalues the method determined (of 50)" in caption
+    note = next(t for t in fig.axes[0].texts if t.get_gid() == "not_listed")
+    rest = wide.manifest["total_variance"] - spec["eigenvalue"].sum()
+    assert note.get_text().startswith("45 more eigenvalues not determined") and f"{rest:.4g}" in note.get_text()
+
+
 # -- cumulative --------------------------------------------------------------------------
 def test_cumulative_variance_with_levels(small, figures):
     ax = figures["cumulative"][0].axes[0]
-    comp = small.spectrum[small.spectrum.retained]
+    comp = small.spectrum
     line = next(line for line in ax.lines if line.get_gid() == "cumulative")
     np.testing.assert_allclose(line.get_ydata(), comp["cumulative_share"], rtol=1e-15)
-    np.testing.assert_allclose([b.get_height() for b in ax.containers[0]], comp["share"],
-                               rtol=1e-15)
+    np.testing.assert_allclose([b.get_height() for b in ax.containers[0]], comp["share"], rtol=1e-15)
+    colours = [b.get_facecolor() for b in ax.containers[0]]
+    assert len({c for c in colours[:4]}) == 1 and colours[4] != colours[0]  # retained bars stand out
     legend = [t.get_text() for t in ax.get_legend().get_texts()]
     for level in LEVELS:
         mark = next(line for line in ax.lines if line.get_gid() == f"level_{level:g}")
         assert list(mark.get_ydata()) == [level, level]
         hit = np.flatnonzero(comp["cumulative_share"].to_numpy() >= level)
-        where = f"reached at PC{hit[0] + 1}" if hit.size else "not reached by PC4"
+        where = f"reached at PC{hit[0] + 1}" if hit.size else "not reached by PC8"
         assert f"{level:.0%} ({where})" in legend
 
 
@@ -144,11 +169,37 @@ def test_heatmap_holds_every_loading_when_d_is_small(small, figures):
     assert [t.get_text() for t in ax.get_xticklabels()] == list(small.loadings.columns)
 
 
-def test_wide_run_has_no_heatmap_and_no_scatter_and_says_why(wide):
+def test_loading_panels_share_one_symmetric_scale_and_the_sign_colours(small, figures):
+    from matplotlib.colors import to_rgba
+
+    from pcapipe.figures import NEGATIVE, POSITIVE, SIGN_CMAP
+
+    axes = [ax for ax in figures["loadings"][0].axes if ax.get_title().startswith("PC")]
+    limits = {ax.get_xlim() for ax in axes}
+    assert len(limits) == 1
+    (lo, hi), = limits
+    assert lo == -hi and hi >= small.loadings.abs().to_numpy().max()
+    for ax in axes:
+        for bar in ax.containers[0]:
+            assert bar.get_facecolor() == to_rgba(POSITIVE if bar.get_width() >= 0 else NEGATIVE)
+    # the heatmap uses the same convention: its map is red at the positive end, blue at the negative end
+    im = figures["heatmap"][0].axes[0].images[0]
+    assert im.get_cmap().name == SIGN_CMAP
+    high, low = im.get_cmap()(0.9), im.get_cmap()(0.1)
+    assert high[0] > high[2] and to_rgba(POSITIVE)[0] > to_rgba(POSITIVE)[2]
+    assert low[2] > low[0] and to_rgba(NEGATIVE)[2] > to_rgba(NEGATIVE)[0]
+
+
+def test_heatmap_is_kept_up_to_100_features_and_dropped_beyond(wide, monkeypatch):
+    import pcapipe.report as report_module
+
     figs, notes = report_figures(wide.directory, wide.manifest)
-    assert set(figs) == {"scree", "cumulative", "loadings", "convergence"}
-    assert any("heatmap" in n and "50 features" in n for n in notes)
+    assert set(figs) == {"scree", "cumulative", "loadings", "heatmap", "convergence"}  # 50 features
+    assert len(figs["heatmap"][0].axes[0].get_yticklabels()) == 50
     assert any("scatter" in n and "output.scores = false" in n for n in notes)
+    monkeypatch.setattr(report_module, "HEATMAP_MAX_FEATURES", 40)
+    figs, notes = report_figures(wide.directory, wide.manifest)
+    assert "heatmap" not in figs and any("heatmap" in n and "50 features" in n for n in notes)
 
 
 # -- scatter ---------------------------------------------------------------------------
@@ -174,16 +225,24 @@ def test_scatter_plots_the_sample(small, figures):
     assert f"for {len(sample)} rows" in caption
 
 
-def test_scatter_coloured_by_a_categorical_column_has_a_legend(small):
+def test_scatter_coloured_by_a_categorical_column_has_a_legend_and_random_order(small):
+    from matplotlib.colors import to_rgba
+
     figs, _ = report_figures(small.directory, small.manifest, color_by="site")
     ax = figs["scatter"][0].axes[0]
     sample = sample_scores(small.directory, ["PC1", "PC2", "site"])
     legend = ax.get_legend()
     assert legend.get_title().get_text() == "site"
-    assert sorted(t.get_text() for t in legend.get_texts()) == sorted(_SITES)
-    for coll, text in zip(ax.collections, [t.get_text() for t in legend.get_texts()]):
-        want = sample.loc[sample["site"] == text, ["PC1", "PC2"]].to_numpy()
-        np.testing.assert_array_equal(np.asarray(coll.get_offsets()), want)
+    names = [t.get_text() for t in legend.get_texts()]
+    assert names == sorted(_SITES)  # the column's own (sorted) order, not by frequency
+    # one collection, points in the order of the seeded permutation: no category drawn last over the rest
+    (coll,) = ax.collections
+    order = np.random.default_rng(small.manifest["config"]["model"]["seed"]).permutation(len(sample))
+    np.testing.assert_array_equal(np.asarray(coll.get_offsets()), sample[["PC1", "PC2"]].to_numpy()[order])
+    colour_of = {n: to_rgba(h.get_color()) for n, h in zip(names, legend.legend_handles)}
+    got = [tuple(c) for c in coll.get_facecolors()]
+    want = [colour_of[v] for v in sample["site"].to_numpy()[order]]
+    np.testing.assert_allclose(np.array(got)[:, :3], np.array(want)[:, :3])
 
 
 @pytest.mark.parametrize("column", ["level", "when"])  # a float column, a timestamp column
@@ -192,10 +251,11 @@ def test_scatter_coloured_by_a_numeric_column_has_a_colorbar(small, column):
     fig = figs["scatter"][0]
     ax = fig.axes[0]
     assert ax.get_legend() is None
-    assert len(fig.axes) == 2 and fig.axes[1].get_ylabel() == column  # the colour bar
+    assert len(fig.axes) == 2 and fig.axes[1].get_ylabel().startswith(column)  # the colour bar
     if column == "level":
         sample = sample_scores(small.directory, ["PC1", "PC2", "level"])
-        np.testing.assert_array_equal(ax.collections[0].get_array(), sample["level"].to_numpy())
+        order = np.random.default_rng(0).permutation(len(sample))
+        np.testing.assert_array_equal(ax.collections[0].get_array(), sample["level"].to_numpy()[order])
 
 
 def test_unknown_color_column_names_the_keep_columns(small):
@@ -211,8 +271,13 @@ def test_convergence_draws_the_residual_history(wide):
     assert history.shape[0] >= 3 and ax.get_yscale() == "log"
     lines = [line for line in ax.lines if line.get_label().startswith("PC")]
     assert [line.get_label() for line in lines] == ["PC1", "PC2", "PC3"]
+    # x = pass over the data: moments (1), decode into memory (2), then one pass per operator application
+    m = wide.manifest
+    assert m["blocks_cached"].startswith("decoded") and not m["scores"]["written"]
+    assert m["passes_over_data"] == 2 + m["solver"]["operator_applications"]
+    assert ax.get_xlabel() == "pass over the data"
     for i, line in enumerate(lines):
-        np.testing.assert_array_equal(line.get_xdata(), np.arange(1, history.shape[0] + 1))
+        np.testing.assert_array_equal(line.get_xdata(), np.arange(3, history.shape[0] + 3))
         np.testing.assert_array_equal(line.get_ydata(), history[:, i])
     tol = next(line for line in ax.lines if line.get_gid() == "tolerance")
     assert list(tol.get_ydata()) == [wide.manifest["solver"]["tolerance"]] * 2
@@ -342,3 +407,43 @@ def test_report_renders_in_headless_chromium(built, tmp_path):
     shot = tmp_path / "page.png"
     done = _chromium(tmp_path, f"--screenshot={shot}", "--window-size=1200,2400", pathlib.Path(path).as_uri())
     assert done.returncode == 0 and _png_size(shot) == (1200, 2400)
+
+
+# -- scatter colouring rules, on invented samples ---------------------------------------------
+def _sample(n, column):
+    rng = np.random.default_rng(9)
+    return __import__("pandas").DataFrame({"PC1": rng.standard_normal(n), "PC2": rng.standard_normal(n),
+                                           "c": column})
+
+
+def test_many_tied_categories_are_all_coloured_and_the_legend_says_so():
+    from pcapipe.figures import fig_scatter
+
+    ids = np.repeat([f"unit-{i:02d}" for i in range(40)], 25)  # 40 categories, all tied at 25 rows
+    ax = fig_scatter(_sample(1000, ids), color_by="c").axes[0]
+    title = ax.get_legend().get_title().get_text()
+    assert "40 categories" in title and "colours repeat every 20" in title
+    assert "most frequent" not in title and ax.get_legend().get_texts() == []
+    colours = np.unique(np.round(ax.collections[0].get_facecolors()[:, :3], 6), axis=0)
+    assert len(colours) == 20  # no point left grey
+
+
+def test_ordered_categories_keep_their_order_and_get_a_sequential_palette():
+    import pandas as pd
+
+    from pcapipe.figures import fig_scatter
+
+    levels = ["low", "medium", "high"]
+    values = pd.Categorical(np.array(levels)[np.r_[np.zeros(50, int), np.ones(5, int), np.full(20, 2)]],
+                            categories=levels, ordered=True)
+    ax = fig_scatter(_sample(75, values), color_by="c").axes[0]
+    assert [t.get_text() for t in ax.get_legend().get_texts()] == levels  # not by frequency (50, 20, 5)
+    lum = [np.dot(h.get_color()[:3], [0.299, 0.587, 0.114]) for h in ax.get_legend().legend_handles]
+    assert lum == sorted(lum)  # viridis: darker to lighter along the order
+
+
+def test_numeric_keep_column_with_many_values_gets_a_colour_scale():
+    from pcapipe.figures import fig_scatter
+
+    fig = fig_scatter(_sample(300, np.arange(300)), color_by="c")  # integers, many distinct: continuous
+    assert fig.axes[0].get_legend() is None and fig.axes[1].get_ylabel() == "c"
