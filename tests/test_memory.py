@@ -143,7 +143,8 @@ def runs(big_data, tmp_path_factory):
         peak, proc = _peak_rss_mib(["-m", "pcapipe", "run", "-q", tmp / "run.toml"], tmp, method)
         with open(tmp / "out" / "manifest.json") as f:
             manifest = json.load(f)
-        values = pq.read_table(tmp / "out" / "spectrum.parquet").column("eigenvalue").to_numpy()
+        spectrum = pq.read_table(tmp / "out" / "spectrum.parquet")
+        values = spectrum.filter(spectrum.column("retained")).column("eigenvalue").to_numpy()  # PC1..PCk
         out[method] = (peak, manifest, values, proc.stderr)
     return out
 
