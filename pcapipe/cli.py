@@ -13,6 +13,7 @@ import json
 import logging
 import os
 import sys
+import textwrap
 import traceback
 import warnings
 
@@ -24,43 +25,106 @@ __all__ = ["main", "build_parser"]
 log = logging.getLogger("pcapipe")
 
 
+_EPILOG = "Options -v/--verbose, -q/--quiet and --debug go before or after the command."
+
+
+def _command(sub, name: str, common, summary: str, description: str, examples: list[str]):
+    """A subcommand whose --help says what it does, in full, with examples."""
+    epilog = "examples:\n" + "\n".join(f"  {e}" for e in examples) + "\n\n" + _EPILOG
+    return sub.add_parser(name, parents=[common], help=summary, description=textwrap.fill(description, 78),
+                          epilog=epilog,
+                          formatter_class=argparse.RawDescriptionHelpFormatter)
+
+
+def _verbosity(parser, default) -> None:
+    parser.add_argument("-v", "--verbose", action="store_true", default=default,
+                        help="also show debug messages (which pass, how long, cluster details)")
+    parser.add_argument("-q", "--quiet", action="store_true", default=default,
+                        help="show only warnings and errors (no progress or summary messages)")
+    parser.add_argument("--debug", action="store_true", default=default,
+                        help="on an error, print its traceback before the one-line message")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="pcapipe", description="Leading principal components of Parquet data "
-                                "larger than memory, from a TOML config.")
+    p = argparse.ArgumentParser(
+        prog="pcapipe", formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Leading principal components of Parquet data larger than memory, from a TOML config.",
+        epilog="examples:\n  pcapipe run configs/demo.toml\n  pcapipe describe runs/demo\n"
+               "  pcapipe COMMAND --help      (what each command does, its arguments, examples)\n\n" + _EPILOG)
     p.add_argument("--version", action="version", version=f"pcapipe {__version__}")
+    _verbosity(p, False)
+    # The same options after the command; SUPPRESS keeps a value given before it.
     common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("-v", "--verbose", action="store_true", help="debug messages")
-    common.add_argument("-q", "--quiet", action="store_true", help="warnings and errors only")
-    common.add_argument("--debug", action="store_true", help="show the traceback of errors")
+    _verbosity(common, argparse.SUPPRESS)
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    r = sub.add_parser("run", parents=[common], help="run one or more configs")
-    r.add_argument("configs", nargs="+", metavar="CONFIG", help="TOML config file(s), run in turn")
+    r = _command(sub, "run", common, "run one or more configs",
+                 "Read the Parquet inputs of each config, compute the principal components and write the "
+                 "run directory (manifest.json, spectrum.parquet, loadings.parquet, features.parquet, "
+                 "scores/, report.html). Several configs run one after another; one that fails does not "
+                 "stop the others.",
+                 ["pcapipe run configs/demo.toml",
+                  "pcapipe run configs/demo.toml --set model.components=8 --set output.directory=runs/k8",
+                  "pcapipe run configs/demo.toml --resume      (continue after an interruption)"])
+    r.add_argument("configs", nargs="+", metavar="CONFIG",
+                   help="TOML config file(s); relative paths inside resolve against the config's directory")
     r.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
-                   help="override a config key, e.g. --set model.components=10 (value parsed as TOML)")
-    r.add_argument("--resume", action="store_true", help="continue an interrupted run from its checkpoint")
+                   help="override a config key, repeatable; the value is read as TOML (a bare word is a "
+                        "string), e.g. --set model.components=10 --set compute.scheduler=local-cluster")
+    r.add_argument("--resume", action="store_true",
+                   help="continue an interrupted run from the checkpoint in <output.directory>.incomplete")
 
-    c = sub.add_parser("check", parents=[common], help="validate and plan only; writes nothing")
-    c.add_argument("config", metavar="CONFIG")
-    c.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE")
+    c = _command(sub, "check", common, "validate and plan only; writes nothing",
+                 "Validate the config, read the Parquet footers (no data), and print the files, rows, "
+                 "features, the method auto would choose and why, and a memory estimate. With a tcp:// "
+                 "scheduler it contacts the cluster (waiting up to compute.connect_timeout) and lists its "
+                 "workers.",
+                 ["pcapipe check configs/demo.toml",
+                  "pcapipe check configs/demo.toml --set compute.scheduler=tcp://head:8786"])
+    c.add_argument("config", metavar="CONFIG", help="TOML config file")
+    c.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a config key, as for run, e.g. --set model.method=matrix-free")
 
-    d = sub.add_parser("describe", parents=[common], help="spectrum table and top loadings of a run")
-    d.add_argument("run_dir", metavar="RUN_DIR")
-    d.add_argument("--top", type=int, default=5, help="loadings shown per component (default 5)")
-    d.add_argument("--json", action="store_true", help="machine-readable output")
+    d = _command(sub, "describe", common, "spectrum table and top loadings of a run",
+                 "Print a finished run's spectrum (the k retained components, then more eigenvalues "
+                 "below a rule) and the features of largest loading on each component, with their "
+                 "correlation with the component's scores.",
+                 ["pcapipe describe runs/demo",
+                  "pcapipe describe runs/demo --top 3 --beyond 0",
+                  "pcapipe describe runs/demo --json > demo.json"])
+    d.add_argument("run_dir", metavar="RUN_DIR", help="a run directory written by pcapipe run")
+    d.add_argument("--top", type=int, default=5, metavar="N",
+                   help="features listed per component, largest |loading| first (default 5; 0: none)")
     d.add_argument("--beyond", type=int, default=10, metavar="N",
                    help="eigenvalues shown past the k retained ones (default 10; all are in spectrum.parquet)")
+    d.add_argument("--json", action="store_true",
+                   help="print JSON instead: every eigenvalue listed and the top loadings (NaN as null)")
 
-    pr = sub.add_parser("project", parents=[common], help="scores of new Parquet files")
-    pr.add_argument("run_dir", metavar="RUN_DIR")
-    pr.add_argument("inputs", nargs="+", metavar="INPUT")
-    pr.add_argument("--out", required=True, metavar="DIR", help="directory for part-NNNNN.parquet")
+    pr = _command(sub, "project", common, "scores of new Parquet files",
+                  "Compute the scores of new rows with a run's preprocessing (means, scales, weights) and "
+                  "loadings, with Hotelling's T2, SPE and their alarms against the run's control limits; "
+                  "one part-NNNNN.parquet per input file, rows in file order, with the run's keep columns "
+                  "when present. Prints how many rows crossed each limit.",
+                  ["pcapipe project runs/demo new/*.parquet --out runs/demo-new",
+                   "pcapipe project runs/demo data_demo/reefer-000.parquet --out /tmp/scores --explain 5"])
+    pr.add_argument("run_dir", metavar="RUN_DIR", help="the run whose model is applied")
+    pr.add_argument("inputs", nargs="+", metavar="INPUT",
+                    help="Parquet files, directories or globs holding the run's feature columns")
+    pr.add_argument("--out", required=True, metavar="DIR",
+                    help="directory for the part-NNNNN.parquet files (must not overlap the inputs)")
     pr.add_argument("--explain", type=int, default=0, metavar="N",
                     help="list the N rows farthest beyond the control limits with their top features")
 
-    rp = sub.add_parser("report", parents=[common], help="build report.html and figures for a run")
-    rp.add_argument("run_dir", metavar="RUN_DIR")
-    rp.add_argument("--color-by", default=None, metavar="COLUMN", help="keep column colouring the scatter")
+    rp = _command(sub, "report", common, "build report.html and figures for a run",
+                  "Draw the figures (scree plot, cumulative variance, loadings, scores scatter, "
+                  "convergence, control chart) as PNG files and a self-contained report.html in the run "
+                  "directory. Needs matplotlib (the plot extra).",
+                  ["pcapipe report runs/demo",
+                   "pcapipe report runs/demo --color-by voyage --time timestamp"])
+    rp.add_argument("run_dir", metavar="RUN_DIR", help="a run directory written by pcapipe run")
+    rp.add_argument("--color-by", default=None, metavar="COLUMN",
+                    help="a keep column colouring the PC1-PC2 scatter: categories get a legend, numbers "
+                         "and times a colour scale")
     rp.add_argument("--time", default=None, metavar="COLUMN",
                     help="keep column for the control chart's x-axis (default: monitor.time, else row order)")
     return p
@@ -135,9 +199,12 @@ def _report_run(res) -> None:
 
 
 def _cmd_check(args) -> int:
-    from .terminal import check_report
+    from .terminal import check
 
-    print(check_report(args.config, args.overrides))
+    text, error = check(args.config, args.overrides)
+    print(text, flush=True)
+    if error is not None:
+        raise error  # the same error line (and exit status) as run
     return 0
 
 

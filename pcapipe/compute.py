@@ -331,9 +331,9 @@ class Runner:
             return self._compute_distributed(list(objs), label, show)
         with contextlib.ExitStack() as stack:
             if show:
-                from dask.diagnostics import ProgressBar
+                from .progress import PassProgressBar
 
-                stack.enter_context(ProgressBar(out=sys.stderr))
+                stack.enter_context(PassProgressBar(f"{label:<10}", out=sys.stderr))
             if self.info.scheduler == "threads":
                 from threadpoolctl import threadpool_limits
 
@@ -346,14 +346,14 @@ class Runner:
             return dask.compute(*objs, scheduler="synchronous")
 
     def _compute_distributed(self, objs: list, label: str, show: bool):
-        from distributed import KilledWorker, progress
+        from distributed import KilledWorker
 
         futures = self.client.compute(objs)
         try:
             if show:
-                # distributed's text bar writes to stdout, which the CLI keeps for results
-                with contextlib.redirect_stdout(sys.stderr):
-                    progress(futures, scheduler=self.client.scheduler.address)
+                from .progress import wait_with_progress
+
+                wait_with_progress(futures, f"{label:<10}", out=sys.stderr)
             return self.client.gather(futures)
         except KilledWorker as e:
             raise ClusterError(
@@ -370,13 +370,26 @@ class Runner:
             if pending:
                 self.client.cancel(pending)
 
-    def persist(self, objs):
-        """Keep computed objects in (worker) memory for later passes."""
+    def persist(self, objs, label: str = "decode"):
+        """Keep computed objects in (worker) memory for later passes (a pass of its own, with its bar)."""
+        show = self.cfg.progress and sys.stderr.isatty()
         if self.distributed:
-            return self.client.persist(list(objs))
-        if self.info.scheduler == "synchronous":
-            return list(dask.persist(*objs, scheduler="synchronous"))
-        return list(dask.persist(*objs, scheduler="threads", num_workers=self.info.workers))
+            kept = self.client.persist(list(objs))
+            if show:
+                from distributed import futures_of
+
+                from .progress import wait_with_progress
+
+                wait_with_progress(futures_of(kept), f"{label:<10}", out=sys.stderr)
+            return kept
+        with contextlib.ExitStack() as stack:
+            if show:
+                from .progress import PassProgressBar
+
+                stack.enter_context(PassProgressBar(f"{label:<10}", out=sys.stderr))
+            if self.info.scheduler == "synchronous":
+                return list(dask.persist(*objs, scheduler="synchronous"))
+            return list(dask.persist(*objs, scheduler="threads", num_workers=self.info.workers))
 
     def probe(self, path: str) -> None:
         """Check that every worker can open ``path`` (the first input file) before any data is read.

@@ -140,7 +140,7 @@ class DataPasses:
             layout = self._decode_layout(transform, 1)
         except InputError:
             return False
-        self._cache = self.runner.persist(self._decode_graph(layout, transform))
+        self._cache = self.runner.persist(self._decode_graph(layout, transform), "decode")
         self._cache_transform = transform
         return True
 

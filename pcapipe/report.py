@@ -42,7 +42,21 @@ __all__ = ["build_report", "write_report", "report_figures", "sample_scores", "s
 
 log = logging.getLogger("pcapipe")
 
-INSTALL_NOTE = "install the plot extra: pip install 'pcapipe[plot]'"
+def _install_note() -> str:
+    """How to get matplotlib: from a source checkout (pyproject.toml beside the package) the extra of
+    that checkout, else the published package's extra."""
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    try:
+        with open(os.path.join(root, "pyproject.toml"), encoding="utf-8") as f:
+            ours = 'name = "pcapipe"' in f.read()
+    except OSError:
+        ours = False
+    if ours:
+        return f"install the plot extra: pip install \".[plot]\" in {root}"
+    return "install the plot extra: pip install \"pcapipe[plot]\""
+
+
+INSTALL_NOTE = _install_note()
 SAMPLE_ROWS = 5000  # enough points to see structure; reading them costs ~nothing
 HEATMAP_MAX_FEATURES = 100  # beyond this the feature names no longer fit beside a heatmap (6-point labels)
 _MAX_SAMPLE_GROUPS = 64  # row groups opened for the sample
@@ -222,7 +236,8 @@ def _scatter(ctx: FigureContext):
     seed = int(ctx.manifest["config"]["model"].get("seed", 0))
     return (fig_scatter(sample, ctx.retained["share"].to_numpy()[:2], ctx.color_by, seed=seed),
             f"PC1 against PC2 for {len(sample)} rows from a spread of row groups "
-            f"(of {ctx.manifest['scores'].get('rows')} scored rows), drawn in random order.")
+            f"(of {ctx.manifest['scores'].get('rows')} scored rows; the first rows of each group read, a "
+            "systematic sample rather than a random one), drawn in random order; equal scales on both axes.")
 
 
 def first_solver_pass(manifest: dict) -> int | None:
@@ -352,7 +367,8 @@ def _title(directory: str) -> str:
     return os.path.basename(final if partial_dir_for(final) == os.path.normpath(directory) else directory)
 
 
-def build_report(directory: str, manifest: dict, color_by: str | None = None, time: str | None = None) -> dict:
+def build_report(directory: str, manifest: dict, color_by: str | None = None, time: str | None = None,
+                 warn: bool = True) -> dict:
     """Write ``report.html`` and one PNG per figure into ``directory``; return the manifest's "report" record.
 
     Parameters
@@ -366,6 +382,9 @@ def build_report(directory: str, manifest: dict, color_by: str | None = None, ti
         A keep column colouring the PC1-PC2 scatter.
     time : str, optional
         A keep column for the control chart's x-axis (default ``monitor.time``).
+    warn : bool
+        Log the install hint when matplotlib is missing (off when the caller
+        reports it itself, so that it is said once).
 
     Returns
     -------
@@ -384,7 +403,8 @@ def build_report(directory: str, manifest: dict, color_by: str | None = None, ti
     try:
         import matplotlib  # noqa: F401  (the optional plot extra)
     except ImportError:
-        log.warning("no report: %s", INSTALL_NOTE)
+        if warn:
+            log.warning("no report: %s", INSTALL_NOTE)
         return {"requested": True, "written": False, "note": INSTALL_NOTE}
     from .result import Result
 
@@ -421,7 +441,7 @@ def write_report(result, color_by: str | None = None, time: str | None = None) -
     OutputError
         matplotlib is not installed (the message says how to install it).
     """
-    entry = build_report(result.directory, result.manifest, color_by, time)
+    entry = build_report(result.directory, result.manifest, color_by, time, warn=False)  # the error says it
     if not entry["written"]:
         raise OutputError(f"{result.directory}: no report written; {entry['note']}")
     path = os.path.join(result.directory, "manifest.json")

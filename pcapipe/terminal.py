@@ -13,7 +13,7 @@ from .formats import BEYOND, SPECTRUM_HEADERS, flag, FLAG_NOTES, percent, sig, s
 from .operators import choose_method
 from .weighted import weights_text
 
-__all__ = ["check_report", "describe_text", "describe_json", "top_loadings", "spectrum_table"]
+__all__ = ["check", "check_report", "describe_text", "describe_json", "top_loadings", "spectrum_table"]
 
 
 def _local_memory(cfg) -> tuple[int, int, str]:
@@ -25,19 +25,56 @@ def _local_memory(cfg) -> tuple[int, int, str]:
     return workers, budget or int(physical_memory() * 0.5 / workers), "per worker"
 
 
+def _contact_cluster(cfg):
+    """Contact a ``tcp://`` scheduler as ``run`` does (same deadline, compute.connect_timeout).
+
+    Returns ``(workers, memory per worker, threads, text, error)``; on failure the
+    plan assumes one worker of 4 GiB (or compute.memory_limit) and ``error`` says why.
+    """
+    from .compute import Runner
+    from .errors import ClusterError
+
+    try:
+        with Runner(cfg.compute) as runner:
+            info = runner.info
+    except ClusterError as e:
+        memory = parse_memory(cfg.compute.memory_limit) or 4 << 30
+        return 1, memory, 1, (f"NOT contacted: {e} (this plan assumes 1 worker of "
+                              f"{format_size(memory)})"), e
+    text = (f"contacted: {info.workers} worker(s) on {info.hosts} host(s), {info.total_threads} thread(s), "
+            f"{format_size(info.memory_per_worker)} per worker (the smallest limit)")
+    return info.workers, info.memory_per_worker, info.total_threads, text, None
+
+
 def check_report(config, overrides=()) -> str:
     """Validate the config and plan the run; return the summary ``pcapipe check`` prints."""
+    return check(config, overrides)[0]
+
+
+def check(config, overrides=()):
+    """``pcapipe check``: the plan as text, and the error that makes it not ok (or None).
+
+    With a ``tcp://`` scheduler the cluster is contacted; if it does not answer,
+    the text says so plainly and the error is the one ``run`` would raise.
+    """
     from .engine import prepare
     from .layout import layout_for
 
     p = prepare(config, overrides)
     plan, cfg = p.plan, p.cfg
     n, d = plan.n_rows, plan.n_features
-    workers, memory, memory_note = _local_memory(cfg)
+    error = None
+    if cfg.compute.scheduler.startswith("tcp://"):
+        workers, memory, threads, compute_text, error = _contact_cluster(cfg)
+        memory_note = "per worker"
+    else:
+        workers, memory, memory_note = _local_memory(cfg)
+        threads = min(_cores(), workers)
+        compute_text = f"{workers} worker(s), {format_size(memory)} {memory_note}"
     comp = cfg.model.components
     k = comp if isinstance(comp, int) else min(d, max(2, cfg.model.oversample))
     block = min(d, k + cfg.model.oversample)
-    choice = choose_method(cfg.model.method, n, d, block, plan.total_bytes, memory, workers, min(_cores(), workers))
+    choice = choose_method(cfg.model.method, n, d, block, plan.total_bytes, memory, workers, threads)
     shared = cfg.compute.scheduler in ("threads", "synchronous")
     accumulator = 8 * d * d if choice.method == "covariance" else 2 * 8 * d * block
     layout = layout_for(plan.pieces(), d, workers=workers, memory_per_worker=memory,
@@ -53,14 +90,15 @@ def check_report(config, overrides=()) -> str:
         f"weights     rows: {plan.row_weight or '(none)'}; features: {cfg.model.feature_weights or '(none)'}",
         f"components  {comp}" + ("" if isinstance(comp, int) else " of the variance"),
         f"method      {choice.method}: {choice.reason}",
-        f"compute     {cfg.compute.scheduler}, {workers} worker(s), {format_size(memory)} {memory_note}",
+        f"compute     {cfg.compute.scheduler}, {compute_text}",
         f"memory      {layout.estimate.describe()}; {len(layout.tasks)} task(s), batches of "
         f"{layout.batch_rows} rows, {layout.in_flight} at once x {layout.threads} thread(s)",
         f"output      {p.writer.directory}",
         *_feature_notes(plan),
-        "ok: nothing was written",
+        "ok: nothing was written" if error is None else
+        "NOT ok: the cluster did not answer (see compute above); nothing was written",
     ]
-    return "\n".join(lines)
+    return "\n".join(lines), error
 
 
 def _feature_notes(plan) -> list[str]:

@@ -261,3 +261,59 @@ def test_several_configs_share_one_scheduler_connection(monkeypatch, tmp_path, r
     assert cli.main(["run", *paths, "-q"]) == 0
     assert opened == ["threads"]  # one connection for both configs with the same [compute]
     assert pcapipe.load(tmp_path / "a").manifest["components"] == pcapipe.load(tmp_path / "b").manifest["components"] == 2
+
+
+# -- help, options anywhere, the plot-extra hint ---------------------------------------------------
+def _subparsers():
+    parser = cli.build_parser()
+    return next(a for a in parser._actions if a.dest == "command").choices
+
+
+@pytest.mark.parametrize("name", ["run", "check", "describe", "project", "report"])
+def test_help_describes_every_argument_and_gives_examples(name):
+    sub = _subparsers()[name]
+    for action in sub._actions:
+        assert action.help and len(action.help) > 10, f"{name} {action.option_strings or action.dest}"
+    assert len(sub.description) > 60
+    examples = sub.epilog.split("examples:\n")[1].split("\n\n")[0].splitlines()
+    assert examples and all(line.strip().startswith(f"pcapipe {name}") for line in examples)
+    shown = run_cli(name, "--help")
+    assert shown.returncode == 0 and "examples:" in shown.stdout and examples[0].strip() in shown.stdout
+
+
+@pytest.mark.parametrize("argv", [
+    ["-q", "describe", "RUN"],          # before the command
+    ["describe", "RUN", "-q"],          # after its arguments
+    ["describe", "-q", "RUN"],          # between
+])
+def test_quiet_is_accepted_anywhere(argv):
+    args = cli.build_parser().parse_args(argv)
+    assert args.quiet is True and args.verbose is False and args.run_dir == "RUN"
+
+
+def test_verbose_before_the_command_reaches_the_logger(quiet_run):
+    _, out = quiet_run
+    proc = run_cli("-v", "describe", out, "--top", "0")
+    assert proc.returncode == 0 and "DEBUG: " not in proc.stdout
+    proc = run_cli("describe", out, "--top", "0", "-q")
+    assert proc.returncode == 0 and proc.stderr == ""
+
+
+_NO_PLOT = ("import sys; sys.modules['matplotlib'] = None; from pcapipe.cli import main; "
+            "sys.exit(main(sys.argv[1:]))")
+
+
+def test_without_matplotlib_the_install_hint_is_said_once_for_a_source_checkout(data_dir, good_config):
+    import subprocess
+    import sys
+
+    out = data_dir / "no-plot"
+    done = subprocess.run([sys.executable, "-c", _NO_PLOT, "run", good_config, "--set", "output.report=true",
+                           "--set", f"output.directory={out}"], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert done.stderr.count("pip install") == 1
+    assert 'pip install ".[plot]"' in done.stderr and "pcapipe[plot]" not in done.stderr  # a source checkout
+    done = subprocess.run([sys.executable, "-c", _NO_PLOT, "report", str(out)], capture_output=True, text=True,
+                          timeout=300)
+    assert done.returncode == 2
+    assert done.stderr.count("pip install") == 1 and done.stderr.startswith("error: ")

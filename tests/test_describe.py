@@ -9,7 +9,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import pcapipe
-from conftest import known_spectrum, make_config, run_cli, write_parquet
+from conftest import known_spectrum, make_config, run_cli, write_parquet, write_toml
 from pcapipe.errors import InputError, NotConvergedWarning
 from pcapipe.formats import sig
 from pcapipe.terminal import check_report, describe_json, describe_text
@@ -158,3 +158,44 @@ def test_check_report_plans_without_writing(tmp_path):
     assert fields["method"].split(":")[0] in ("covariance", "matrix-free")
     assert text.splitlines()[-1] == "ok: nothing was written"
     assert not os.path.exists(tmp_path / "run")
+
+
+# -- check with a tcp:// scheduler -----------------------------------------------------------------
+def _check_config(tmp_path, scheduler, timeout=10.0):
+    rng = np.random.default_rng(0)
+    write_parquet(tmp_path / "in", rng.standard_normal((200, 4)), files=2)
+    cfg = make_config(str(tmp_path / "in" / "*.parquet"), tmp_path / "run", model={"components": 2},
+                      compute={"scheduler": scheduler, "connect_timeout": timeout})
+    path = tmp_path / "check.toml"
+    write_toml(path, cfg)
+    return path
+
+
+@pytest.mark.cluster
+def test_check_contacts_the_scheduler_and_lists_its_workers(tmp_path):
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False, protocol="tcp://", host="127.0.0.1",
+                      dashboard_address="127.0.0.1:0", memory_limit="512MiB") as cluster:
+        done = run_cli("check", _check_config(tmp_path, cluster.scheduler_address))
+    assert done.returncode == 0, done.stderr
+    compute = next(line for line in done.stdout.splitlines() if line.startswith("compute"))
+    assert compute == (f"compute     {cluster.scheduler_address}, contacted: 2 worker(s) on 1 host(s), "
+                       "2 thread(s), 512.0 MiB per worker (the smallest limit)")  # config.format_size
+    assert done.stdout.rstrip().endswith("ok: nothing was written")
+    assert not (tmp_path / "run").exists()
+
+
+def test_check_says_plainly_when_the_scheduler_does_not_answer(tmp_path):
+    import socket
+
+    with socket.socket() as s:  # a port nothing listens on once closed
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    done = run_cli("check", _check_config(tmp_path, f"tcp://127.0.0.1:{port}", timeout=1.0))
+    assert done.returncode == 2
+    compute = next(line for line in done.stdout.splitlines() if line.startswith("compute"))
+    assert "NOT contacted" in compute and "this plan assumes 1 worker of 4.0 GiB" in compute
+    assert done.stdout.rstrip().endswith("NOT ok: the cluster did not answer (see compute above); nothing was written")
+    errors = [line for line in done.stderr.splitlines() if line.startswith("error: ")]
+    assert len(errors) == 1 and "compute.scheduler" in errors[0] and f"127.0.0.1:{port}" in errors[0]
