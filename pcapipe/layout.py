@@ -24,7 +24,9 @@ compressed copy and the column's dictionary page, about
 ``1.25 * (min(chunk, 1 MiB) + dictionary) + min(chunk, 64 KiB)`` (the
 last term is the 64 KiB read buffer; pages of at most
 1 MiB are what pyarrow, polars and DuckDB write by default); a row group read
-whole costs about ``2.2x`` its uncompressed bytes; the decoded batch costs
+whole costs about ``4.5x`` its uncompressed bytes (the Arrow table, the pages
+and the allocator's slack: 1M x 256 float64 in 32k-row groups, two tasks,
+peak 764 MB); the decoded batch costs
 twice its float64 bytes (the Arrow batch and the float64 buffer); the
 covariance accumulator ``8 d^2``.  The run's peak is then at most
 ``in_flight * task + held accumulators + cached blocks + FIXED_OVERHEAD``.
@@ -53,6 +55,8 @@ WHOLE_ROW_GROUP_BYTES = 64 << 20
 # reader holds about one page per column.
 _PAGE_BYTES = 1 << 20
 _READ_BUFFER = 64 << 10
+# Peak bytes per uncompressed byte of a row group read whole (measured, see the module docstring).
+_WHOLE_FACTOR = 4.5
 # Rows a task should hold at least, counted in decoded bytes: below this the
 # per-task cost (a dask task, a tree node, a footer) shows; measured on 5,000
 # files of 200 x 64 (DEVELOPERS.md).
@@ -194,9 +198,10 @@ def _task_bytes(task: Task, batch_rows: int, d: int, whole: int) -> tuple[int, i
     """(reader buffers, batch bytes) of one task at its costliest piece."""
     reader = 0
     for p in task.pieces:
-        reader = max(reader, int(2.2 * p.nbytes) if p.nbytes <= whole else p.stream_bytes)
+        reader = max(reader, int(_WHOLE_FACTOR * p.nbytes) if p.nbytes <= whole else p.stream_bytes)
     if len(task.pieces) > 1:  # small pieces are gathered into one batch before decoding
-        reader = max(reader, int(2.2 * sum(p.nbytes for p in task.pieces) * min(1.0, batch_rows / task.n_rows)))
+        reader = max(reader, int(_WHOLE_FACTOR * sum(p.nbytes for p in task.pieces)
+                                  * min(1.0, batch_rows / task.n_rows)))
     return reader, 2 * 8 * min(batch_rows, task.n_rows) * d
 
 
@@ -231,7 +236,8 @@ def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: i
     budget = workers * memory_per_worker
     per_task_memory = budget // max(1, workers)
     batch_rows = batch_rows_for(d, per_task_memory)
-    whole = min(WHOLE_ROW_GROUP_BYTES, per_task_memory // 4)
+    # read whole only what costs at most a quarter of a task's memory; stream the rest
+    whole = min(WHOLE_ROW_GROUP_BYTES, int(per_task_memory / (4 * _WHOLE_FACTOR)))
     target = max(batch_rows, _TASK_BYTES // (8 * max(1, d)))
     if accumulator:  # each task adds a d x d partial and a merge: give it at least 8 d rows of work
         target = max(target, 8 * d)

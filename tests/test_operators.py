@@ -44,13 +44,13 @@ def test_auto_choice_is_recorded_in_the_manifest(tmp_path, rng):
 
 
 def test_auto_goes_matrix_free_when_memory_is_short(tmp_path, rng):
-    # 600 features: the 2.9 MB matrix (x3) does not fit half of an 8 MiB worker (4 MiB: less than
-    # pyarrow's buffers for one row group plus a batch, so the layout would be refused)
+    # 600 features: the 2.9 MB matrix (x3) does not fit half of a 16 MiB worker (less than that would
+    # not hold pyarrow's buffers for 600 columns plus a batch: the layout would be refused)
     x = rng.standard_normal((700, 600))
     x[:, :3] *= [30.0, 20.0, 10.0]  # two clear leading components, so the iteration is short
     write_parquet(tmp_path / "d", x, row_group=350)
     res = pcapipe.run(make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run", model={"components": 2},
-                                  compute={"memory_limit": "8MiB", "scheduler": "synchronous"}))
+                                  compute={"memory_limit": "16MiB", "scheduler": "synchronous"}))
     assert res.manifest["method"] == "matrix-free" and "more than half" in res.manifest["method_reason"]
 
 
