@@ -42,7 +42,7 @@ class FooterStats:
     Row-id candidates are integer features whose every row group holds a
     run of consecutive values (``max - min == rows - 1``) with no nulls; a
     candidate is dropped at the first row group that breaks this.  Value
-    ranges for the variance hint come from the first file only.
+    ranges for the variance hint come from the first row group with rows.
     """
 
     def __init__(self, schema: pa.Schema, features):
@@ -53,26 +53,31 @@ class FooterStats:
 
     def add(self, md) -> None:
         """Take the statistics of one file's footer (``pyarrow.parquet.FileMetaData``)."""
-        want = set(self.ids) | (set(self.features) if self.ranges is None else set())
-        if not want:
+        if not self.ids and self.ranges is not None:
             return
         leaf = {md.schema.column(j).path: j for j in range(md.num_columns)}
-        ranges: dict[str, list] = {}
         for g in range(md.num_row_groups):
             rg = md.row_group(g)
             if rg.num_rows == 0:
                 continue
-            for name in [n for n in want if n in leaf]:
+            if self.ranges is None:  # one row group is enough for a hint, and cheap on wide tables
+                self.ranges = self._ranges(rg, leaf)
+            for name in [n for n in self.ids if n in leaf]:
                 st = rg.column(leaf[name]).statistics
-                ok = st is not None and st.has_min_max
-                if self.ranges is None and name in self.features and ok:
-                    lo, hi = ranges.setdefault(name, [st.min, st.max])
-                    ranges[name] = [min(lo, st.min), max(hi, st.max)]
-                if name in self.ids:
-                    self._id_group(name, st if ok and st.null_count == 0 else None, rg.num_rows)
-            want &= set(self.ids) | (set(self.features) if self.ranges is None else set())
-        if self.ranges is None:
-            self.ranges = {n: float(hi) - float(lo) for n, (lo, hi) in ranges.items()}
+                usable = st is not None and st.has_min_max and st.null_count == 0
+                self._id_group(name, st if usable else None, rg.num_rows)
+            if not self.ids:
+                return
+
+    def _ranges(self, rg, leaf: dict) -> dict[str, float]:
+        """max - min of every feature in one row group; empty unless every feature has statistics."""
+        out = {}
+        for name in self.features:
+            st = rg.column(leaf[name]).statistics if name in leaf else None
+            if st is None or not st.has_min_max:
+                return {}
+            out[name] = float(st.max) - float(st.min)
+        return out
 
     def _id_group(self, name: str, st, rows: int) -> None:
         c = self.ids[name]
@@ -107,8 +112,8 @@ class FooterStats:
             name = max(ranges, key=ranges.get)
             share = ranges[name] ** 2 / total
             if share > DOMINANT_SHARE and name not in ids:  # an id's own warning says more
-                out.append(_dominant_text(name, share, f"sum of squared value ranges in {first_file}'s "
-                                                       "footer statistics (an estimate of the variance)"))
+                out.append(_dominant_text(name, share, f"sum of squared value ranges in the footer statistics "
+                                                       f"of {first_file} (an estimate of the variance)"))
         return out
 
 
