@@ -114,13 +114,17 @@ def find_inputs(patterns, base_dir: str) -> Inputs:
                 "write it relative to the config file's directory"
             )
         found += [os.path.abspath(f) for f in files]
-    distinct: dict[tuple[int, int], str] = {}
-    duplicates = []
+    spellings: dict[tuple[int, int], list[str]] = {}
     for f in sorted(set(found)):
         st = os.stat(f)
-        first = distinct.setdefault((st.st_dev, st.st_ino), f)
-        if first != f:
-            duplicates.append((f, first))
+        spellings.setdefault((st.st_dev, st.st_ino), []).append(f)
+    distinct: dict[tuple[int, int], str] = {}
+    duplicates = []
+    for key, names in spellings.items():
+        # the file's own name rather than a symlink to it; then the first in sorted order
+        distinct[key] = min(names, key=lambda f: (os.path.islink(f), f))
+        duplicates += [(f, distinct[key]) for f in names if f != distinct[key]]
+    duplicates.sort()
     inputs = Inputs(tuple(sorted(distinct.values())), tuple(sorted(set(map(os.path.abspath, skipped)))),
                     tuple(duplicates))
     if inputs.skipped:

@@ -43,10 +43,12 @@ def test_one_read_per_real_file(tree):
     os.symlink(tree / "d" / "a.parquet", tree / "d" / "sub" / "link.parquet")
     os.link(tree / "d" / "sub" / "f.parquet", tree / "d" / "hard.parquet")
     os.symlink(tree / "d", tree / "d" / "sub" / "loop")  # a directory loop must end
+    os.symlink("a.parquet", tree / "d" / "0.parquet")  # sorts first, but the file's own name is kept
     found = find_inputs(["d", "d/a.parquet"], str(tree))
     assert list(found.files) == [str(tree / "d" / "a.parquet"), str(tree / "d" / "hard.parquet")]
-    assert sorted(p for p, _ in found.duplicates) == [str(tree / "d/sub/f.parquet"),
-                                                       str(tree / "d/sub/link.parquet")]
+    assert list(found.duplicates) == [(str(tree / "d/0.parquet"), str(tree / "d/a.parquet")),
+                                      (str(tree / "d/sub/f.parquet"), str(tree / "d/hard.parquet")),
+                                      (str(tree / "d/sub/link.parquet"), str(tree / "d/a.parquet"))]
 
 
 def test_only_skipped_files_is_an_error_that_says_so(tree):
