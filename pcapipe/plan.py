@@ -25,13 +25,12 @@ from .guards import FooterStats
 from .layout import Piece, footer_costs
 from .reader import is_numeric as _is_numeric
 from .reader import one_line as _one_line
+from .monitor import STAT_COLUMNS  # the columns the scores hold beside keep and PC1..PCk
 
 log = logging.getLogger("pcapipe")
 
 # pandas.DataFrame.to_parquet stores a non-default index as these columns: not measurements.
 _PANDAS_INDEX = re.compile(r"__index_level_[0-9]+__")
-# Columns the score files hold beside the keep columns and PC1..PCk (DESIGN.md, run directory).
-MONITOR_COLUMNS = ("t2", "spe", "t2_alarm", "spe_alarm")
 
 __all__ = ["FileInfo", "Block", "Plan", "make_plan", "resolve_inputs", "feature_names_for"]
 
@@ -212,10 +211,10 @@ def _check_keep_names(cfg: Config) -> None:
     pcs = f"PC1..PC{comp}" if isinstance(comp, int) else "PC1, PC2, ..."
     for name in cfg.input.keep:
         pc = re.fullmatch(r"PC([1-9][0-9]*)", name)
-        if name in MONITOR_COLUMNS or (pc and (not isinstance(comp, int) or int(pc.group(1)) <= comp)):
+        if name in STAT_COLUMNS or (pc and (not isinstance(comp, int) or int(pc.group(1)) <= comp)):
             raise InputError(
                 f"input.keep: column {name!r} has the name of a column the scores get ({pcs}, "
-                f"{', '.join(MONITOR_COLUMNS)}); leave it out of input.keep, or rename it in the data"
+                f"{', '.join(STAT_COLUMNS)}); leave it out of input.keep, or rename it in the data"
             )
 
 
