@@ -10,15 +10,18 @@ kill at any moment leaves the previous complete checkpoint.  No pickle: the
 
 A checkpoint is used only for the same job: the same ``input`` and ``model``
 sections and ``output.scores``, and the same files (path, size, modification
-time).  The ``compute`` section may change between attempts, since results
-do not depend on the scheduler.
+time and a fingerprint of the Parquet footer, so a file rewritten with the
+same size and time is noticed).  The ``compute`` section may change between
+attempts (see README, "Determinism").  The ``--set`` overrides of the
+interrupted run are stored with it, so ``pcapipe run CONFIG --resume``
+applies them again (overrides given with ``--resume`` come on top).
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
-import shutil
 import tempfile
 
 import numpy as np
@@ -29,9 +32,9 @@ from .moments import Moments
 from .solver import SolverState
 from .writer import write_json_atomic
 
-__all__ = ["Checkpoint", "job_identity"]
+__all__ = ["Checkpoint", "job_identity", "saved_overrides", "merge_overrides"]
 
-_VERSION = 1
+_VERSION = 2  # 2: input footer fingerprints and the --set overrides
 
 
 def job_identity(cfg, plan) -> dict:
@@ -43,14 +46,40 @@ def job_identity(cfg, plan) -> dict:
             "feature_weights": list(plan.feature_weights) if plan.feature_weights is not None else None}
 
 
+def saved_overrides(partial_dir: str) -> list[str]:
+    """The ``--set`` overrides stored with the checkpoint in ``partial_dir`` ([] when there is none)."""
+    try:
+        with open(os.path.join(partial_dir, "checkpoint", "state.json")) as f:
+            overrides = json.load(f).get("overrides", [])
+    except (OSError, ValueError, AttributeError):
+        return []  # no usable checkpoint: Checkpoint.load says so
+    return [str(o) for o in overrides] if isinstance(overrides, list) else []
+
+
+def merge_overrides(first, then) -> list[str]:
+    """``--set`` overrides ``first`` then ``then``, one per key, the later one winning."""
+    merged: dict[str, str] = {}
+    for item in (*first, *then):
+        key = str(item).partition("=")[0].strip()
+        merged.pop(key, None)
+        merged[key] = str(item)
+    return list(merged.values())
+
+
 def _save_npz(path: str, arrays: dict) -> None:
     fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=".npz", dir=os.path.dirname(path))
     os.close(fd)
-    with open(tmp, "wb") as f:
-        np.savez(f, **arrays)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as f:
+            np.savez(f, **arrays)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        # a full disk must not keep a half-written array (the previous one stays valid)
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
 
 
 def _load_npz(path: str) -> dict:
@@ -69,9 +98,10 @@ class Checkpoint:
         :func:`job_identity` of the current config and plan.
     """
 
-    def __init__(self, partial_dir: str, identity: dict):
+    def __init__(self, partial_dir: str, identity: dict, overrides=()):
         self.dir = os.path.join(partial_dir, "checkpoint")
         self.identity = identity
+        self.overrides = [str(o) for o in overrides]
         self.state: dict = {}
 
     @property
@@ -119,9 +149,11 @@ class Checkpoint:
             if a is None or b is None:
                 raise ResumeError(f"--resume: input file {path} was {'added' if a is None else 'removed'} "
                                   "since the interrupted run; run without --resume")
-            if (a["bytes"], a["mtime_ns"]) != (b["bytes"], b["mtime_ns"]):
-                raise ResumeError(f"--resume: input file {path} changed since the interrupted run "
-                                  "(size or modification time); run without --resume")
+            for key, what in (("bytes", "size"), ("mtime_ns", "modification time"),
+                              ("footer", "contents: its Parquet footer differs")):
+                if a.get(key) != b.get(key):
+                    raise ResumeError(f"--resume: input file {path} changed since the interrupted run "
+                                      f"({what}); run without --resume")
 
     def moments(self) -> Moments:
         a = _load_npz(os.path.join(self.dir, "moments.npz"))
@@ -161,8 +193,15 @@ class Checkpoint:
         if probe is not None and not os.path.isfile(os.path.join(self.dir, "probe.npz")):
             _save_npz(os.path.join(self.dir, "probe.npz"), probe)
         self.state.update(info)
-        self.state.update({"version": _VERSION, "stage": stage, "identity": self.identity})
+        self.state.update({"version": _VERSION, "stage": stage, "identity": self.identity,
+                           "overrides": self.overrides})
         write_json_atomic(os.path.join(self.dir, "state.json"), self.state)
 
-    def remove(self) -> None:
-        shutil.rmtree(self.dir, ignore_errors=True)
+    def size(self) -> int:
+        """Bytes the checkpoint occupies on disk."""
+        total = 0
+        for root, _, files in os.walk(self.dir):
+            for name in files:
+                with contextlib.suppress(OSError):
+                    total += os.lstat(os.path.join(root, name)).st_size
+        return total

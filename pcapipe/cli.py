@@ -2,7 +2,9 @@
 
 Exit status: 0 done; 2 bad config or bad input (one ``error:`` line on
 stderr naming the file, column or key and what to do; the traceback only
-with ``--debug``); 1 unexpected failure; 130 interrupted.
+with ``--debug``); 3 the compute infrastructure failed during the run
+(scheduler lost, workers keep dying; resumable); 1 unexpected failure;
+130 interrupted.
 """
 
 from __future__ import annotations
@@ -18,9 +20,9 @@ import traceback
 import warnings
 
 from ._version import __version__
-from .errors import ConfigError, NotConvergedWarning, PcapipeError
+from .errors import ConfigError, InfrastructureError, NotConvergedWarning, PcapipeError
 
-__all__ = ["main", "build_parser"]
+__all__ = ["main", "build_parser", "exit_status"]
 
 log = logging.getLogger("pcapipe")
 
@@ -154,24 +156,33 @@ def _cmd_run(args) -> int:
         raise ConfigError(f"--set {shared[0]}: one output directory for {len(args.configs)} configs; "
                           "set output.directory in each config file instead")
     # Several configs: a bad one must not stop the others; the worst outcome
-    # decides the exit status (a bug, 1, outranks bad input, 2).  Configs with
-    # the same [compute] section share one scheduler connection.
+    # decides the exit status (a bug, 1, outranks a failed cluster, 3, which
+    # outranks bad input, 2).  Configs with the same [compute] section share
+    # one scheduler connection.
     status, done = 0, 0
     with contextlib.ExitStack() as stack:
         runners: dict = {}
         for path in args.configs:
             try:
                 cfg = load_config(path, args.overrides)
-                _report_run(run(cfg, resume=args.resume, runner=_runner_for(cfg, runners, stack)))
+                _report_run(run(path, args.overrides, resume=args.resume,
+                                runner=_runner_for(cfg, runners, stack)))
                 done += 1
-            except PcapipeError as e:
-                status = status or 2
-                _print_error(args, e, prefix=path)
             except Exception as e:  # noqa: BLE001 - reported like main() does, then go on
-                status = 1
+                status = min((s for s in (status, exit_status(e)) if s), key=_RANK.index)
                 _print_error(args, e, prefix=path)
     log.info("%d of %d configs succeeded", done, len(args.configs))
     return status
+
+
+_RANK = (1, 3, 2)  # worst first
+
+
+def exit_status(e: BaseException) -> int:
+    """The exit status for an error: 3 infrastructure, 2 the user's to fix, 1 a bug."""
+    if isinstance(e, InfrastructureError):
+        return 3
+    return 2 if isinstance(e, PcapipeError) else 1
 
 
 def _runner_for(cfg, runners: dict, stack):
@@ -278,6 +289,8 @@ def main(argv=None) -> int:
         with warnings.catch_warnings():
             # The engine logs each NotConvergedWarning already; once is enough.
             warnings.simplefilter("ignore", NotConvergedWarning)
+            # Overflow in the moments is detected and reported in one error line naming the column.
+            warnings.filterwarnings("ignore", "overflow encountered", RuntimeWarning)
             return _COMMANDS[args.command](args)
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
@@ -287,6 +300,6 @@ def main(argv=None) -> int:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 0
-    except Exception as e:  # PcapipeError: the user's to fix (2); anything else is a bug (1)
+    except Exception as e:  # see exit_status
         _print_error(args, e)
-        return 2 if isinstance(e, PcapipeError) else 1
+        return exit_status(e)

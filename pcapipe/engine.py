@@ -16,7 +16,6 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
-import shutil
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -25,10 +24,11 @@ import numpy as np
 
 from ._version import __version__
 from .alarms import FirstBlock, count_alarms, every_eigenvalue, fit_limits, monitor_spec
-from .compute import Runner, _cores
+from .compute import Runner, cores
 from .config import Config, load_config, resolve_path
-from .checkpoint import Checkpoint, job_identity
+from .checkpoint import Checkpoint, job_identity, merge_overrides, saved_overrides
 from .errors import InputError, OutputError
+from .failures import resume_command, settle
 from .guards import moment_warnings
 from .moments import Moments, covariance_from
 from .operators import DenseOperator, MatrixFreeOperator, MethodChoice, choose_method
@@ -38,7 +38,7 @@ from .plan import Plan, make_plan
 from .solver import SolverResult, solve
 from .tasks import Transform
 from .weighted import check_total_weight, feature_weight_array, input_scale, weight_features
-from .writer import RunWriter
+from .writer import RunWriter, partial_dir_for
 
 __all__ = ["run", "prepare", "Prepared", "check_components"]
 
@@ -94,6 +94,29 @@ def _missing_error(plan: Plan, m: Moments) -> InputError:
     )
 
 
+def _named(plan: Plan, mask: np.ndarray) -> str:
+    idx = np.flatnonzero(mask)
+    more = f" and {idx.size - 5} more" if idx.size > 5 else ""
+    return ", ".join(plan.features[i] for i in idx[:5]) + more
+
+
+def _check_finite(plan: Plan, m: Moments, center: bool) -> None:
+    """Refuse moments that overflowed float64 (values near 1e154 and beyond square past 1.8e308)."""
+    diag = np.diag(m.m2) if m.full else m.m2
+    bad = ~np.isfinite(m.mean) | ~np.isfinite(diag)
+    if m.full:
+        bad |= ~np.isfinite(np.triu(m.m2)).all(axis=0) | ~np.isfinite(np.triu(m.m2)).all(axis=1)
+    if not center:  # the second moment about zero squares the mean too
+        with np.errstate(over="ignore"):
+            bad |= ~np.isfinite(m.mean**2 * m.n)
+    if bad.any():
+        raise InputError(
+            f"input: feature(s) {_named(plan, bad)} hold values too large for float64 arithmetic: "
+            "their sums of squares overflow (beyond about 1.8e308, i.e. values of about 1e150 or more); "
+            "rescale them (divide by a power of ten) or leave them out with input.exclude"
+        )
+
+
 def _moments_pass(p: Prepared, passes: DataPasses, full: bool) -> Moments:
     mode = p.cfg.input.missing
     m = passes.moments(full, mode)
@@ -102,9 +125,17 @@ def _moments_pass(p: Prepared, passes: DataPasses, full: bool) -> Moments:
             raise _missing_error(p.plan, m)
         log.info("missing values in %d feature(s): %s", int((m.missing > 0).sum()), mode)
         if mode == "impute-mean":
+            empty = m.valid_n == 0
+            if empty.any():
+                raise InputError(
+                    f"input: feature(s) {_named(p.plan, empty)} have no finite value in any of the "
+                    f"{m.rows_seen} rows, so input.missing = \"impute-mean\" has no mean to fill in; "
+                    "leave them out with input.exclude"
+                )
             m = passes.moments(full, mode, fill=m.valid_mean)
     if m.weight is not None:
         check_total_weight(p.plan, m)
+    _check_finite(p.plan, m, p.cfg.model.center)
     if m.n < 2:
         raise InputError(f"input: {m.n} row(s) left after input.missing = {mode!r}; PCA needs at least 2 rows: "
                          'use input.missing = "impute-mean" or clean the data')
@@ -217,10 +248,16 @@ def run(config, overrides=(), resume: bool = False, runner: Runner | None = None
     """
     from .result import load
 
+    overrides = list(overrides)
+    if resume and not isinstance(config, Config):
+        # the overrides of the interrupted run first; those given now come on top
+        found = load_config(config, overrides)
+        overrides = merge_overrides(saved_overrides(partial_dir_for(resolve_path(found, found.output.directory))),
+                                    overrides)
     p = prepare(config, overrides)
-    ckpt = Checkpoint(p.writer.partial, job_identity(p.cfg, p.plan))
+    ckpt = Checkpoint(p.writer.partial, job_identity(p.cfg, p.plan), overrides)
     if resume:
-        ckpt.load(f"{p.cfg.source}")
+        ckpt.load(p.cfg.source)
     elif ckpt.exists and not p.cfg.output.overwrite:
         raise OutputError(
             f"output.directory: an unfinished run of {p.writer.directory} is in {p.writer.partial}; "
@@ -234,12 +271,10 @@ def run(config, overrides=(), resume: bool = False, runner: Runner | None = None
             manifest = _Job(p, runner, ckpt).execute()
         directory = p.writer.finish(manifest)
     except BaseException as e:
-        if not ckpt.exists:
-            shutil.rmtree(p.writer.partial, ignore_errors=True)
-        elif isinstance(e, KeyboardInterrupt):
-            log.warning("interrupted; the checkpoint is kept in %s; continue with: pcapipe run %s --resume",
-                        ckpt.dir, p.cfg.source)
-        raise
+        instead = settle(p, ckpt, e, overrides)
+        if instead is None:
+            raise
+        raise instead from e
     log.info("wrote %s", directory)
     return load(directory)
 
@@ -266,7 +301,7 @@ class _Job:
 
     def _cores(self) -> int:
         # a cluster's threads are all cores at work; locally no more than this machine has
-        return self.runner.parallelism if self.runner.distributed else min(_cores(), self.runner.parallelism)
+        return self.runner.parallelism if self.runner.distributed else min(cores(), self.runner.parallelism)
 
     def execute(self) -> dict:
         p, runner = self.p, self.runner

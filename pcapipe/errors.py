@@ -2,7 +2,9 @@
 
 Every error a user can fix (bad config, bad input, an output directory in the
 way) is a :class:`PcapipeError`; the command line turns it into one
-``error: ...`` line and exit status 2.  Anything else is a bug (exit 1).
+``error: ...`` line and exit status 2, except :class:`InfrastructureError`
+(the compute cluster failed in the middle of a run: exit status 3, resumable).
+Anything else is a bug (exit 1).
 """
 
 __all__ = [
@@ -11,6 +13,7 @@ __all__ = [
     "InputError",
     "OutputError",
     "ClusterError",
+    "InfrastructureError",
     "ResumeError",
     "RunDirectoryError",
     "NotConvergedWarning",
@@ -34,7 +37,15 @@ class OutputError(PcapipeError):
 
 
 class ClusterError(PcapipeError):
-    """The compute cluster cannot be reached or cannot read the input."""
+    """The compute cluster cannot be used as configured: unreachable, no workers, input unseen, too little memory."""
+
+
+class InfrastructureError(PcapipeError):
+    """The compute infrastructure failed during a run (scheduler lost, workers keep dying).
+
+    Not the user's config: the checkpoint is kept and the same command with
+    ``--resume`` continues once the cluster is back (exit status 3).
+    """
 
 
 class ResumeError(PcapipeError):

@@ -9,6 +9,7 @@ column fails in seconds instead of an hour into the run.
 from __future__ import annotations
 
 import fnmatch
+import hashlib
 import logging
 import os
 import re
@@ -32,7 +33,8 @@ log = logging.getLogger("pcapipe")
 # pandas.DataFrame.to_parquet stores a non-default index as these columns: not measurements.
 _PANDAS_INDEX = re.compile(r"__index_level_[0-9]+__")
 
-__all__ = ["FileInfo", "Block", "Plan", "make_plan", "resolve_inputs", "feature_names_for"]
+__all__ = ["FileInfo", "Block", "Plan", "make_plan", "resolve_inputs", "feature_names_for",
+           "footer_fingerprint"]
 
 
 @dataclass(frozen=True)
@@ -46,6 +48,7 @@ class FileInfo:
     row_group_rows: tuple[int, ...]
     row_group_bytes: tuple[int, ...] = ()   # uncompressed bytes of the selected columns
     row_group_stream: tuple[int, ...] = ()  # estimated reader buffers to stream them (layout.footer_costs)
+    footer: str = ""  # footer_fingerprint: a file rewritten with the same size and mtime differs here
 
 
 @dataclass(frozen=True)
@@ -110,7 +113,7 @@ class Plan:
     def inputs_record(self) -> list[dict]:
         """The inputs as recorded in the manifest and checked on resume."""
         return [
-            {"path": f.path, "bytes": f.size, "mtime_ns": f.mtime_ns, "rows": f.n_rows}
+            {"path": f.path, "bytes": f.size, "mtime_ns": f.mtime_ns, "rows": f.n_rows, "footer": f.footer}
             for f in self.files
         ]
 
@@ -122,6 +125,21 @@ def _open_footer(path: str) -> pq.ParquetFile:
         raise InputError(
             f"{path}: not a readable Parquet file ({_one_line(e)}); re-copy it or remove it from input.paths"
         ) from e
+
+
+def footer_fingerprint(path: str) -> str:
+    """SHA-256 (first 32 hex digits) of a Parquet file's footer: its schema, row groups and statistics.
+
+    A Parquet file ends with the footer, its 4-byte little-endian length and
+    ``PAR1`` (Apache Parquet format specification, "File format"); the footer
+    changes whenever the data do (offsets, sizes, min/max statistics), at the
+    cost of one small read.
+    """
+    with open(path, "rb") as f:
+        f.seek(-8, os.SEEK_END)
+        length = int.from_bytes(f.read(4), "little")
+        f.seek(-8 - length, os.SEEK_END)
+        return hashlib.sha256(f.read(length)).hexdigest()[:32]
 
 
 def _is_list(t: pa.DataType) -> bool:
@@ -406,7 +424,7 @@ class _Scan:
             rg_rows = tuple(md.row_group(i).num_rows for i in range(md.num_row_groups))
             st = os.stat(path)
             files.append(FileInfo(path, st.st_size, st.st_mtime_ns, md.num_rows, rg_rows,
-                                  *footer_costs(md, self.columns)))
+                                  *footer_costs(md, self.columns), footer_fingerprint(path)))
             for rg, n in enumerate(rg_rows):
                 if n:
                     blocks.append(Block(len(blocks), fi, path, rg, n))

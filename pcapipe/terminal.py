@@ -6,7 +6,7 @@ import math
 
 import numpy as np
 
-from .compute import _cores, physical_memory
+from .compute import cores, physical_memory
 from .config import format_size, parse_memory
 from .errors import InputError
 from .formats import BEYOND, SPECTRUM_HEADERS, flag, FLAG_NOTES, percent, sig, spectrum_cells, spectrum_shown
@@ -21,7 +21,7 @@ def _local_memory(cfg) -> tuple[int, int, str]:
     budget = parse_memory(cfg.compute.memory_limit)
     if kind.startswith("tcp://"):
         return 1, budget or 4 << 30, "per worker of the cluster (assumed 4 GiB unless memory_limit is set)"
-    workers = 1 if kind == "synchronous" else (cfg.compute.workers or _cores())
+    workers = 1 if kind == "synchronous" else (cfg.compute.workers or cores())
     return workers, budget or int(physical_memory() * 0.5 / workers), "per worker"
 
 
@@ -69,7 +69,7 @@ def check(config, overrides=()):
         memory_note = "per worker"
     else:
         workers, memory, memory_note = _local_memory(cfg)
-        threads = min(_cores(), workers)
+        threads = min(cores(), workers)
         compute_text = f"{workers} worker(s), {format_size(memory)} {memory_note}"
     comp = cfg.model.components
     k = comp if isinstance(comp, int) else min(d, max(2, cfg.model.oversample))
@@ -78,7 +78,7 @@ def check(config, overrides=()):
     shared = cfg.compute.scheduler in ("threads", "synchronous")
     accumulator = 8 * d * d if choice.method == "covariance" else 2 * 8 * d * block
     layout = layout_for(plan.pieces(), d, workers=workers, memory_per_worker=memory,
-                        cores=max(1, min(_cores(), workers)) if shared else 1, shared=shared, accumulator=accumulator)
+                        cores=max(1, min(cores(), workers)) if shared else 1, shared=shared, accumulator=accumulator)
     lines = [
         f"config      {cfg.source}",
         f"files       {len(plan.files)} ({format_size(plan.total_bytes)}), {len(plan.blocks)} blocks (row groups)",

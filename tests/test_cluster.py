@@ -30,7 +30,8 @@ import pytest
 import pcapipe
 import pcapipe.engine
 from conftest import ROOT, known_spectrum, make_config, run_cli, write_parquet, retained
-from pcapipe.compute import Runner, blas_shares
+from pcapipe.cluster import blas_shares
+from pcapipe.compute import Runner
 from pcapipe.config import ComputeConfig
 from pcapipe.errors import ClusterError
 
