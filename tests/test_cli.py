@@ -200,7 +200,8 @@ def _two_configs(directory):
 
 
 def _name(cfg) -> str:
-    return os.path.basename(cfg.source)
+    # run() gets the config's path (so that --resume can re-apply stored overrides)
+    return os.path.basename(getattr(cfg, "source", cfg))
 
 
 @pytest.mark.usefixtures("restore_logging")
