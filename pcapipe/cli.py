@@ -139,8 +139,29 @@ def _setup_logging(args) -> None:
     log.handlers[:] = [handler]
     log.setLevel(level)
     log.propagate = False
-    # distributed logs lost workers and schedulers with tracebacks; the error: line says it once
-    logging.getLogger("distributed").setLevel(logging.INFO if args.verbose else logging.CRITICAL)
+    _quiet_libraries(args.verbose)
+
+
+# dask.distributed's own loggers (its defaults, distributed.yaml) and the event loop's.
+_LIBRARY_LOGGERS = ("distributed", "distributed.client", "distributed.gc", "bokeh", "tornado",
+                    "tornado.application", "asyncio")
+
+
+def _quiet_libraries(verbose: bool) -> None:
+    """Keep dask.distributed's tracebacks off stderr: a lost scheduler is said once, in the error line.
+
+    distributed sets its loggers' levels from dask's config when it is first
+    imported (later, when a cluster is used), so the config is set as well as
+    the loggers that exist now.
+    """
+    import dask
+
+    levels = {name: "critical" for name in _LIBRARY_LOGGERS}
+    if verbose:
+        levels.update({"distributed": "info", "distributed.client": "warning"})
+    dask.config.set({"logging": {k: v for k, v in levels.items() if k != "asyncio"}})
+    for name, level in levels.items():
+        logging.getLogger(name).setLevel(level.upper())
 
 
 def _cmd_run(args) -> int:

@@ -267,10 +267,14 @@ class ClusterBackend:
                 wait_with_progress(futures, f"{label:<10}", out=sys.stderr)
             return self.client.gather(futures)
         except KilledWorker as e:
+            try:
+                what = (f"{e.allowed_failures + 1} worker(s) died while running its task {e.task}, the last "
+                        f"one {e.last_worker.address}")
+            except (AttributeError, IndexError, TypeError):  # another version's KilledWorker
+                what = "workers died repeatedly while running one of its tasks"
             raise InfrastructureError(
-                f"the {label} pass failed: workers died repeatedly while running one of its tasks "
-                f"({e}); this is usually a worker running out of memory: give workers more "
-                "with `dask worker --memory-limit`, or fewer threads each"
+                f"the {label} pass failed: {what}; this is usually a worker running out of memory (see "
+                "its log): give workers more with `dask worker --memory-limit`, or fewer threads each"
             ) from e
         except Exception as e:
             if not self._lost(e):

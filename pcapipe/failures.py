@@ -28,6 +28,7 @@ import shlex
 import shutil
 
 from .checkpoint import Checkpoint
+from .config import format_size
 from .errors import InfrastructureError, OutputError
 from .writer import MARKER
 
@@ -72,10 +73,6 @@ def _free_bytes(path: str) -> int:
     return st.f_bavail * st.f_frsize
 
 
-def _mb(n: float) -> str:
-    return f"{max(n, 0) / 1e6:.1f} MB"
-
-
 def _outputs_estimate(p, ckpt: Checkpoint) -> int:
     """Bytes the remaining outputs need: scores (float64 per component, t2, spe and keep column per row)."""
     k = p.cfg.model.components if isinstance(p.cfg.model.components, int) else p.plan.n_features
@@ -101,7 +98,7 @@ def _clear_outputs(partial: str) -> None:
 
 def _kept(ckpt: Checkpoint, command: str) -> str:
     passes = int(ckpt.state.get("passes", 0))
-    return (f"the checkpoint of the {passes} pass(es) over the data already done ({_mb(ckpt.size())}) "
+    return (f"the checkpoint of the {passes} pass(es) over the data already done ({format_size(ckpt.size())}) "
             f"is kept in {ckpt.dir}; continue with: {command}")
 
 

@@ -147,3 +147,261 @@ def test_hostile_runtime_case(tmp_path, build, status, words):
     assert _digests(tmp_path / "data") == before
     # nothing written: no run directory, no .incomplete sibling, no checkpoint
     assert sorted(os.listdir(tmp_path)) == ["data", "job.toml"]
+
+
+# ---------------------------------------------------------------- item 6: a full disk
+# A driver run inside a private mount namespace (``unshare -m``; as a normal
+# user ``unshare -rm``): it mounts a real tmpfs of a given size at the output's
+# parent, runs pcapipe, lists what is left, then grows the tmpfs
+# (``mount -o remount,size=``) and runs the resume command the error printed.
+# The mount disappears with the namespace, whatever happens to the test.
+_DRIVER = r"""
+import json, os, shlex, subprocess, sys
+mnt, size, config, report = sys.argv[1:5]
+if subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", mnt]).returncode:
+    sys.exit(99)
+def listing():
+    out = []
+    for dirpath, dirs, files in os.walk(mnt):
+        out += [os.path.relpath(os.path.join(dirpath, n), mnt) for n in dirs + files]
+    return sorted(out)
+run = [sys.executable, "-m", "pcapipe"]
+first = subprocess.run(run + ["run", config], capture_output=True, text=True)
+result = {"status": first.returncode, "stderr": first.stderr, "left": listing()}
+line = [ln for ln in first.stderr.splitlines() if ln.startswith("error:")]
+if line and "continue with: " in line[-1]:
+    command = line[-1].split("continue with: ", 1)[1].split(" once there is room")[0]
+    subprocess.run(["mount", "-o", "remount,size=256m", mnt], check=True)
+    words = shlex.split(command)
+    assert words[:2] == ["pcapipe", "run"], command
+    second = subprocess.run(run + words[1:], capture_output=True, text=True)
+    result.update(resume_command=command, resume_status=second.returncode, resume_stderr=second.stderr,
+                  after=listing())
+    if second.returncode == 0:
+        import pcapipe
+        res = pcapipe.load(os.path.join(mnt, "out"))
+        result["eigenvalues"] = res.spectrum["eigenvalue"].to_list()
+        result["rows"] = int(res.scores()["PC1"].count().compute())
+with open(report, "w") as f:
+    json.dump(result, f)
+"""
+
+
+def _on_small_disk(tmp_path, size: str, config: str) -> dict:
+    mnt = tmp_path / "disk"
+    mnt.mkdir()
+    (tmp_path / "driver.py").write_text(_DRIVER)
+    report = tmp_path / "report.json"
+    flags = "-m" if os.geteuid() == 0 else "-rm"
+    if shutil.which("unshare") is None:
+        pytest.skip("no unshare(1) to make a private small filesystem")
+    proc = subprocess.run(["unshare", flags, sys.executable, str(tmp_path / "driver.py"), str(mnt), size, config,
+                           str(report)], capture_output=True, text=True, cwd=ROOT, timeout=300)
+    if proc.returncode == 99 or (proc.returncode and "unshare" in proc.stderr):
+        pytest.skip(f"cannot mount a small tmpfs here: {proc.stderr.strip()[:200]}")
+    assert proc.returncode == 0, proc.stderr
+    assert os.listdir(mnt) == []  # the tmpfs went away with the namespace
+    return json.loads(report.read_text())
+
+
+@pytest.fixture(scope="module")
+def scores_job(tmp_path_factory):
+    """120k rows x 8 features in 4 files: scores of ~6 MB, a checkpoint of a few kB."""
+    root = tmp_path_factory.mktemp("disk")
+    rng = np.random.default_rng(11)
+    # Eigenvalues made up for the test; only that they are distinct matters.
+    x = known_spectrum(120_000, 8, [8.0, 5.0, 3.0, 2.0, 1.0, 0.5, 0.3, 0.1], rng, mean=2.0)
+    write_parquet(root / "data", x, files=4, row_group=10_000, keep={"row": np.arange(x.shape[0])})
+    ref = pcapipe.run(make_config(str(root / "data"), root / "ref", input={"keep": ["row"]},
+                                  model={"components": 3}))
+    return root, ref
+
+
+@pytest.mark.parametrize("method", ["covariance", "matrix-free"])
+def test_full_disk_while_writing_scores(scores_job, tmp_path, method):
+    root, ref = scores_job
+    before = _digests(root / "data")
+    cfg = make_config(str(root / "data"), tmp_path / "disk" / "out", input={"keep": ["row"]},
+                      model={"components": 3, "method": method})
+    config = write_toml(tmp_path / "job.toml", cfg)
+    r = _on_small_disk(tmp_path, "2m", config)
+    assert r["status"] == 2, r["stderr"]
+    line = _one_error_line(r["stderr"])
+    _assert_words(line, [f"no space left on {tmp_path / 'disk'}", "MB or choose another output.directory",
+                         "checkpoint of the", "kept in", "continue with: pcapipe run", "--resume"])
+    # partial score parts and temporary files are gone; the checkpoint and our marker stay
+    assert all(p.startswith("out.incomplete") for p in r["left"]), r["left"]
+    assert not any("scores" in p or ".tmp" in p for p in r["left"]), r["left"]
+    assert "out.incomplete/checkpoint/state.json" in r["left"]
+    # the printed command works once there is room, and gives the uninterrupted answer
+    assert r["resume_status"] == 0, r["resume_stderr"]
+    np.testing.assert_allclose(r["eigenvalues"], ref.spectrum["eigenvalue"].to_numpy()[:3], rtol=1e-10)
+    assert r["rows"] == 120_000
+    assert r["after"][0] == "out" and not any(p.startswith("out.incomplete") for p in r["after"])
+    assert _digests(root / "data") == before
+
+
+def test_full_disk_before_any_checkpoint_keeps_nothing(scores_job, tmp_path):
+    root, _ = scores_job
+    before = _digests(root / "data")
+    # A feature wide enough that the first checkpoint (moments, d x d for covariance) does not fit 64 kB.
+    rng = np.random.default_rng(12)
+    write_parquet(tmp_path / "wide", rng.standard_normal((200, 120)))
+    cfg = make_config(str(tmp_path / "wide"), tmp_path / "disk" / "out", model={"components": 2,
+                                                                               "method": "covariance"})
+    r = _on_small_disk(tmp_path, "64k", write_toml(tmp_path / "job.toml", cfg))
+    assert r["status"] == 2, r["stderr"]
+    _assert_words(_one_error_line(r["stderr"]), ["no space left on", "nothing was kept"])
+    assert r["left"] == []
+    assert _digests(root / "data") == before
+
+
+# ---------------------------------------------------------------- item 10: the cluster fails mid-run
+# A real scheduler and two workers (``dask scheduler`` / ``dask worker`` as
+# subprocesses on 127.0.0.1, the helper of tests/test_cluster.py), a real
+# ``pcapipe run`` in a subprocess, and a real kill.
+
+@pytest.fixture(scope="module")
+def cluster_job(tmp_path_factory):
+    """A matrix-free job needing many passes (close eigenvalues, tight tolerance), and its threads answer."""
+    root = tmp_path_factory.mktemp("clusterjob")
+    rng = np.random.default_rng(21)
+    # Eigenvalues made up for the test: slowly decaying, so that the solver needs several passes
+    # and the run lasts a few seconds after its first checkpoint.
+    spectrum = np.concatenate([[10.0, 9.0, 8.2, 7.6, 7.1], np.linspace(6.8, 0.5, 19)])
+    x = known_spectrum(400_000, 24, spectrum, rng, mean=-3.0)
+    write_parquet(root / "data", x, files=4, row_group=25_000, keep={"row": np.arange(x.shape[0])})
+    cfg = make_config(str(root / "data"), root / "ref", input={"keep": ["row"]},
+                      model={"components": 4, "method": "matrix-free", "tolerance": 1e-13, "oversample": 2},
+                      compute={"scheduler": "threads", "workers": 2, "memory_limit": "1GiB"})
+    ref = pcapipe.run(cfg)
+    assert ref.manifest["passes_over_data"] >= 6
+    return root, cfg, ref
+
+
+@pytest.fixture
+def live_cluster(tmp_path, monkeypatch):
+    from test_cluster import _Cluster
+
+    # A worker that dies while running a task makes that task fail at once
+    # (dask's default retries it on another worker three times).
+    monkeypatch.setenv("DASK_DISTRIBUTED__SCHEDULER__ALLOWED_FAILURES", "0")
+    c = _Cluster(tmp_path / "cluster")
+    os.makedirs(c.dir)
+    try:
+        yield c.start(2)
+    finally:
+        c.close()
+
+
+def _start_on(cluster, cluster_job, tmp_path):
+    root, cfg, _ = cluster_job
+    cfg = json.loads(json.dumps(cfg))
+    cfg["compute"] = {"scheduler": cluster.address, "progress": False}
+    config = write_toml(tmp_path / "job.toml", cfg)
+    proc = subprocess.Popen([sys.executable, "-m", "pcapipe", "run", config, "--set",
+                             f"output.directory={tmp_path / 'out'}"], cwd=ROOT, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    return proc, config
+
+
+def _wait_for_checkpoint(partial, proc, min_passes=1, timeout=120.0):
+    state = os.path.join(partial, "checkpoint", "state.json")
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            pytest.fail(f"the run ended before it could be interrupted: {proc.stderr.read()}")
+        try:
+            with open(state) as f:
+                if json.load(f)["passes"] >= min_passes:
+                    return
+        except (OSError, ValueError, KeyError):
+            pass
+        time.sleep(0.01)
+    proc.kill()
+    pytest.fail("no checkpoint within the timeout")
+
+
+def _resume(line: str, *extra):
+    command = line.split("continue with: ", 1)[1].split(" once ")[0]
+    words = shlex.split(command)
+    assert words[:2] == ["pcapipe", "run"] and "--resume" in words, command
+    return run_cli(*words[1:], *extra, timeout=300)
+
+
+def _same_answer(res, ref):
+    np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy(), ref.spectrum["eigenvalue"].to_numpy(),
+                               rtol=1e-11)
+
+
+@pytest.mark.cluster
+def test_lost_scheduler_exits_3_with_one_line_and_resumes(live_cluster, cluster_job, tmp_path):
+    root, _, ref = cluster_job
+    before = _digests(root / "data")
+    proc, config = _start_on(live_cluster, cluster_job, tmp_path)
+    try:
+        _wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
+        os.killpg(live_cluster.procs[0].pid, signal.SIGKILL)  # the scheduler
+        _, stderr = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 3, stderr
+    line = _one_error_line(stderr)
+    _assert_words(line, ["connection to the dask scheduler", live_cluster.address, "was lost",
+                         "checkpoint of the", "continue with: pcapipe run", "--resume", "once the cluster is back"])
+    assert not (tmp_path / "out").exists() and (tmp_path / "out.incomplete" / "checkpoint" / "state.json").exists()
+    # the printed command continues the run (here on the local threads scheduler: compute may change)
+    r = _resume(line, "--set", "compute.scheduler=threads", "-q")
+    assert r.returncode == 0, r.stderr
+    res = pcapipe.load(tmp_path / "out")
+    _same_answer(res, ref)
+    assert res.manifest["resumed"] and not (tmp_path / "out.incomplete").exists()
+    assert _digests(root / "data") == before
+
+
+@pytest.mark.cluster
+def test_ctrl_c_on_a_cluster_is_quiet_and_resumable(live_cluster, cluster_job, tmp_path):
+    root, _, ref = cluster_job
+    proc, config = _start_on(live_cluster, cluster_job, tmp_path)
+    try:
+        _wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
+        proc.send_signal(signal.SIGINT)
+        _, stderr = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 130, stderr
+    for word in _NOISE:
+        assert word not in stderr, stderr
+    lines = [ln for ln in stderr.splitlines() if ln.strip()]
+    assert lines[-1] == "interrupted", stderr
+    hint = [ln for ln in lines if "continue with: " in ln]
+    assert len(hint) == 1 and "--resume" in hint[0], stderr
+    r = _resume(hint[0], "-q")  # the cluster is still there
+    assert r.returncode == 0, r.stderr
+    _same_answer(pcapipe.load(tmp_path / "out"), ref)
+
+
+@pytest.mark.cluster
+def test_workers_dying_exit_3_and_nothing_left(live_cluster, cluster_job, tmp_path):
+    from test_cluster import _victim, _wait_until
+
+    root, _, _ = cluster_job
+    before = _digests(root / "data")
+    proc, _ = _start_on(live_cluster, cluster_job, tmp_path)
+    try:
+        victim = _wait_until(lambda: _victim(live_cluster, "first pass") or (proc.poll() is not None and "ended"),
+                             60, "a moments task on a worker", interval=0.005)
+        assert victim != "ended", proc.stderr.read()
+        live_cluster.kill_worker(victim)
+        _, stderr = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 3, stderr
+    _assert_words(_one_error_line(stderr), ["moments pass failed", "worker(s) died while running its task pcapipe-moments-",
+                                            "running out of memory",
+                                            "nothing was kept", "once the cluster is back"])
+    assert sorted(os.listdir(tmp_path)) == ["cluster", "job.toml"]
+    assert _digests(root / "data") == before
