@@ -217,7 +217,10 @@ def scores_job(tmp_path_factory):
     return root, ref
 
 
-@pytest.mark.parametrize("method", ["covariance", "matrix-free"])
+@pytest.mark.parametrize("method", [
+    "covariance",                                          # scores after one pass
+    pytest.param("matrix-free", marks=pytest.mark.slow),   # scores after the solver's passes
+])
 def test_full_disk_while_writing_scores(scores_job, tmp_path, method):
     root, ref = scores_job
     before = _digests(root / "data")
@@ -360,6 +363,7 @@ def test_lost_scheduler_exits_3_with_one_line_and_resumes(live_cluster, cluster_
     assert _digests(root / "data") == before
 
 
+@pytest.mark.slow
 @pytest.mark.cluster
 def test_ctrl_c_on_a_cluster_is_quiet_and_resumable(live_cluster, cluster_job, tmp_path):
     root, _, ref = cluster_job
@@ -437,6 +441,7 @@ _SCHEDULERS = {
 }
 
 
+@pytest.mark.slow
 @pytest.mark.cluster
 def test_covariance_method_identical_bits_on_every_scheduler(det_data):
     """Sentence: "the covariance method gives identical bits on every scheduler and any number of workers"."""
@@ -447,6 +452,7 @@ def test_covariance_method_identical_bits_on_every_scheduler(det_data):
         assert np.array_equal(v, values) and np.array_equal(u, vectors), name
 
 
+@pytest.mark.slow
 @pytest.mark.cluster
 def test_matrix_free_agrees_to_1e_11_and_repeats_bit_for_bit(det_data):
     """Sentences: "matrix-free: the same config and compute section repeat bit for bit; other schedulers,
