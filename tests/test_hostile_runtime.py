@@ -468,3 +468,78 @@ def test_matrix_free_agrees_to_1e_11_and_repeats_bit_for_bit(det_data):
         np.testing.assert_allclose(v, values, rtol=1e-11, atol=0, err_msg=name)
         # loadings: a vector's error is residual / gap (Davis-Kahan); gaps here are >= 0.07 x theta_1
         np.testing.assert_allclose(np.abs(u), np.abs(vectors), atol=1e-9, err_msg=name)
+
+
+# ---------------------------------------------------------------- item 9: resume
+@pytest.mark.slow
+def test_resume_command_after_ctrl_c_keeps_the_overrides(cluster_job, tmp_path):
+    """The printed command alone continues the run: --set model.components=3 is stored with the checkpoint."""
+    root, cfg, ref = cluster_job
+    before = _digests(root / "data")
+    config = write_toml(tmp_path / "job.toml", cfg)  # its own output.directory is another one
+    out = tmp_path / "elsewhere"
+    proc = subprocess.Popen([sys.executable, "-m", "pcapipe", "run", config, "--set", f"output.directory={out}",
+                             "--set", "model.components=3"], cwd=ROOT, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        _wait_for_checkpoint(str(out) + ".incomplete", proc)
+        proc.send_signal(signal.SIGINT)
+        _, stderr = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 130, stderr
+    hint = [ln for ln in stderr.splitlines() if "continue with: " in ln]
+    assert len(hint) == 1, stderr
+    command = hint[0].split("continue with: ", 1)[1]
+    assert command == shlex.join(["pcapipe", "run", config, "--resume", "--set", f"output.directory={out}"])
+    r = _resume(hint[0], "-q")
+    assert r.returncode == 0, r.stderr
+    res = pcapipe.load(out)
+    assert res.manifest["resumed"] and res.loadings.shape[1] == 3
+    np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:3], ref.spectrum["eigenvalue"].to_numpy()[:3],
+                               rtol=1e-10)
+    assert sorted(os.listdir(tmp_path)) == ["elsewhere", "job.toml"]
+    assert _digests(root / "data") == before
+
+
+def _write_plain(path, values):
+    # Uncompressed, plain-encoded: the file's size depends only on the number of values.
+    pq.write_table(pa.table({"a": values[:, 0], "b": values[:, 1], "c": values[:, 2]}), path,
+                   compression="none", use_dictionary=False, row_group_size=500)
+
+
+def test_resume_notices_a_file_rewritten_with_the_same_size_and_time(tmp_path, monkeypatch):
+    rng = np.random.default_rng(41)
+    os.makedirs(tmp_path / "data")
+    path = tmp_path / "data" / "x.parquet"
+    _write_plain(path, rng.standard_normal((2000, 3)))
+    cfg = make_config(str(tmp_path / "data"), tmp_path / "out", model={"components": 2})
+    config = write_toml(tmp_path / "job.toml", cfg)
+    # An interruption right after the first checkpoint (standing in for Ctrl-C; the real
+    # one is tested above and in tests/test_resume.py).
+    from pcapipe.checkpoint import Checkpoint
+
+    save = Checkpoint.save
+
+    def save_then_stop(self, *args, **kwargs):
+        save(self, *args, **kwargs)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(Checkpoint, "save", save_then_stop)
+    with pytest.raises(KeyboardInterrupt):
+        pcapipe.run(config)
+    monkeypatch.undo()
+    st = path.stat()
+    _write_plain(path, rng.standard_normal((2000, 3)))  # other values, same layout
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert (path.stat().st_size, path.stat().st_mtime_ns) == (st.st_size, st.st_mtime_ns)
+    before = _digests(tmp_path / "data")
+    r = run_cli("run", config, "--resume", timeout=120)
+    assert r.returncode == 2, r.stderr
+    _assert_words(_one_error_line(r.stderr), [str(path), "changed since the interrupted run",
+                                              "Parquet footer differs", "run without --resume"])
+    assert _digests(tmp_path / "data") == before
+    # the refused resume left the checkpoint as it was, and wrote nothing else
+    assert sorted(os.listdir(tmp_path)) == ["data", "job.toml", "out.incomplete"]
+    assert (tmp_path / "out.incomplete" / "checkpoint" / "state.json").exists()
