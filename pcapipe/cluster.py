@@ -24,8 +24,10 @@ import concurrent.futures
 import contextlib
 import logging
 import os
+import signal
 import socket
 import sys
+import threading
 import time
 
 from .compute import WorkerInfo, cores, physical_memory
@@ -189,9 +191,13 @@ class ClusterBackend:
         from distributed import Client, LocalCluster
 
         check_worker_memory(memory, workers)
-        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, memory_limit=memory,
-                               processes=True, host="127.0.0.1", dashboard_address="127.0.0.1:0",
-                               silence_logs=logging.WARNING)
+        # The workers write to our stderr; what they would say there (a cancelled task
+        # after Ctrl-C, memory warnings) the run says itself, once, unless asked for debug output.
+        quiet = logging.WARNING if log.isEnabledFor(logging.DEBUG) else logging.CRITICAL
+        with _children_ignore_sigint():
+            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, memory_limit=memory,
+                                   processes=True, host="127.0.0.1", dashboard_address="127.0.0.1:0",
+                                   silence_logs=quiet)
         self._stack.callback(cluster.close)
         # Not the default client: a notebook's own dask work must not land here.
         self.client = Client(cluster, set_as_default=False)
@@ -339,6 +345,24 @@ class ClusterBackend:
             raise ClusterError(f"worker(s) {', '.join(late)} did not run a one-task check within "
                                f"{timeout:g} s; are they overloaded or gone?") from e
         return answers
+
+
+@contextlib.contextmanager
+def _children_ignore_sigint():
+    """Start worker processes with SIGINT ignored (an ignored signal stays ignored across exec).
+
+    Ctrl-C in a terminal reaches the whole process group; the workers would
+    each print a KeyboardInterrupt traceback, while this process alone stops
+    the run, keeps the checkpoint and closes the cluster.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
 
 @contextlib.contextmanager

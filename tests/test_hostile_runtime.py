@@ -543,3 +543,29 @@ def test_resume_notices_a_file_rewritten_with_the_same_size_and_time(tmp_path, m
     # the refused resume left the checkpoint as it was, and wrote nothing else
     assert sorted(os.listdir(tmp_path)) == ["data", "job.toml", "out.incomplete"]
     assert (tmp_path / "out.incomplete" / "checkpoint" / "state.json").exists()
+
+
+@pytest.mark.slow
+@pytest.mark.cluster
+def test_ctrl_c_in_a_terminal_on_a_local_cluster_is_quiet(cluster_job, tmp_path):
+    """Ctrl-C in a terminal signals the whole process group, the worker processes included."""
+    root, cfg, _ = cluster_job
+    cfg = json.loads(json.dumps(cfg))
+    cfg["compute"] = {"scheduler": "local-cluster", "workers": 2, "memory_limit": "1GiB", "progress": False}
+    cfg["output"]["directory"] = str(tmp_path / "out")
+    proc = subprocess.Popen([sys.executable, "-m", "pcapipe", "run", write_toml(tmp_path / "job.toml", cfg)],
+                            cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            start_new_session=True)
+    try:
+        _wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
+        os.killpg(proc.pid, signal.SIGINT)
+        _, stderr = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+    assert proc.returncode == 130, stderr
+    for word in (*_NOISE, "KeyboardInterrupt", "CancelledError", "Nanny"):
+        assert word not in stderr, stderr
+    lines = [ln for ln in stderr.splitlines() if ln.strip()]
+    assert lines[-1] == "interrupted" and "continue with: pcapipe run" in lines[-2], stderr
+    assert (tmp_path / "out.incomplete" / "checkpoint" / "state.json").exists()
