@@ -107,10 +107,12 @@ class FooterStats:
                 "statistics; the run checks whether they are distinct); if it is, move it to input.keep")
                for n, lo, hi, proven in self.row_ids(n_rows)]
         ranges = {n: r for n, r in (self.ranges or {}).items() if r == r}  # NaN-free
-        total = sum(r * r for r in ranges.values())
+        # relative to the largest range, so that ranges of 1e160 do not overflow (the run refuses those)
+        top = max(ranges.values(), default=0.0)
+        total = sum((r / top) ** 2 for r in ranges.values()) if 0 < top < float("inf") else 0.0
         if not scale and len(self.features) > 1 and total > 0:
             name = max(ranges, key=ranges.get)
-            share = ranges[name] ** 2 / total
+            share = 1.0 / total
             if share > DOMINANT_SHARE and name not in ids:  # an id's own warning says more
                 out.append(_dominant_text(name, share, f"sum of squared value ranges in the footer statistics "
                                                        f"of {first_file} (an estimate of the variance)"))
