@@ -22,7 +22,7 @@ from dask import delayed
 from dask.base import tokenize
 
 from . import tasks
-from .compute import _cores
+from .compute import cores as _cores
 from .errors import InputError
 from .layout import Layout, layout_for
 from .moments import Moments, merge_into
