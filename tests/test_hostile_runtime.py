@@ -337,6 +337,7 @@ def _same_answer(res, ref):
                                rtol=1e-11)
 
 
+@pytest.mark.slow
 @pytest.mark.cluster
 def test_lost_scheduler_exits_3_with_one_line_and_resumes(live_cluster, cluster_job, tmp_path):
     root, _, ref = cluster_job
