@@ -238,7 +238,7 @@ def test_full_disk_while_writing_scores(scores_job, tmp_path, method):
     assert "out.incomplete/checkpoint/state.json" in r["left"]
     # the printed command works once there is room, and gives the uninterrupted answer
     assert r["resume_status"] == 0, r["resume_stderr"]
-    np.testing.assert_allclose(r["eigenvalues"], ref.spectrum["eigenvalue"].to_numpy()[:3], rtol=1e-10)
+    np.testing.assert_allclose(r["eigenvalues"][:3], ref.spectrum["eigenvalue"].to_numpy()[:3], rtol=1e-10)
     assert r["rows"] == 120_000
     assert r["after"][0] == "out" and not any(p.startswith("out.incomplete") for p in r["after"])
     assert _digests(root / "data") == before
