@@ -87,7 +87,9 @@ def write_part(path: str, row_groups, spec: ReadSpec, t: Transform, loadings: np
     rows = 0
     try:
         schema = out_schema(pq.ParquetFile(path).schema_arrow, keep, names, monitor)
-        with pq.ParquetWriter(tmp, schema, compression="zstd") as writer:
+        # dictionary pages only for keep columns: continuous scores never repeat, and trying a
+        # dictionary on them took most of the write time (measured, tests/perf/bench_monitor.py)
+        with pq.ParquetWriter(tmp, schema, compression="zstd", use_dictionary=list(keep)) as writer:
             for table in score_tables(path, row_groups, spec, t, loadings, names, keep, monitor):
                 writer.write_table(table)
                 rows += table.num_rows
