@@ -2,7 +2,6 @@
 (scores/ parts, Result.monitor, Result.contributions, pcapipe project --explain)."""
 
 import glob
-import logging
 import os
 
 import numpy as np
@@ -214,15 +213,6 @@ def test_contributions_of_training_rows_by_position_match_the_rows_themselves(mo
     np.testing.assert_allclose(by_pos.to_numpy(), by_frame.to_numpy(), rtol=1e-13)
     scores = res.scores().compute()
     np.testing.assert_allclose(by_pos["spe"].sum(axis=1), scores["spe"].to_numpy()[rows], rtol=1e-10)
-
-
-@pytest.fixture
-def restore_logging():
-    """main() configures the "pcapipe" logger (no propagation); later caplog tests need it back."""
-    log = logging.getLogger("pcapipe")
-    saved = log.handlers[:], log.level, log.propagate
-    yield
-    log.handlers[:], log.level, log.propagate = saved
 
 
 def test_project_prints_alarm_counts_and_explains_the_worst_rows(model_run, capsys, restore_logging):
