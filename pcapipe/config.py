@@ -109,7 +109,7 @@ SECTIONS: dict[str, type] = {
 }
 CHOICES: dict[str, tuple[str, ...]] = {
     "input.missing": ("fail", "drop-rows", "impute-mean"),
-    "model.method": ("auto", "covariance", "matrix-free"),
+    "model.method": ("auto", "covariance", "direct", "matrix-free"),
 }
 SCHEDULERS: tuple[str, ...] = ("threads", "processes", "synchronous", "local-cluster")
 # Decimal units are powers of 1000, binary ones powers of 1024 (IEC 80000-13).

@@ -28,14 +28,16 @@ from .compute import Runner, cores
 from .config import Config, load_config, resolve_path
 from .checkpoint import Checkpoint, job_identity, merge_overrides, saved_overrides
 from .errors import InputError, OutputError
+from .decomposition import SolverResult
+from .eigen import eigensolve, start_count
 from .failures import resume_command, settle
 from .guards import moment_warnings
+from .methods import CACHE_SHARE, MethodChoice, choose_method
 from .moments import Moments, covariance_from
-from .operators import DenseOperator, MatrixFreeOperator, MethodChoice, choose_method
+from .operators import DataOperator, DenseOperator, MatrixFreeOperator
 from .outputs import build_tables, component_names, manifest_for
 from .passes import DataPasses
 from .plan import Plan, make_plan
-from .solver import SolverResult, solve
 from .tasks import Transform
 from .weighted import check_total_weight, feature_weight_array, input_scale, weight_features
 from .writer import RunWriter, partial_dir_for
@@ -167,49 +169,6 @@ def _preprocessing(p: Prepared, m: Moments) -> tuple[Transform, np.ndarray, np.n
     return Transform(shift, inv, missing, fill), std, scale_used
 
 
-def _solve(p: Prepared, op, rng, depth: int, callback=None, state=None) -> SolverResult:
-    mc = p.cfg.model
-    d = p.plan.n_features
-    kwargs = dict(tolerance=mc.tolerance, max_iterations=mc.max_iterations, oversample=mc.oversample,
-                  depth=depth, callback=callback)
-    comp = mc.components
-    if isinstance(comp, int):
-        return solve(op.matmat, d, comp, rng=rng, state=state, **kwargs)
-    # A fraction of the variance: grow k until the cumulative share reaches it,
-    # warm-starting each round from the vectors already found.
-    k, start = min(d, max(2, mc.oversample)), None
-    while True:
-        res = solve(op.matmat, d, k, rng=rng, start=start, **kwargs)
-        share = np.cumsum(res.values) / op.trace
-        hit = np.flatnonzero(share >= comp - 1e-12)
-        if hit.size or k == d:
-            keep = int(hit[0]) + 1 if hit.size else k
-            return _truncate(res, keep)
-        k, start = min(d, 2 * k), res.vectors
-
-
-def _truncate(res: SolverResult, k: int) -> SolverResult:
-    # the pairs found beyond k stay listed in the spectrum, not retained
-    return SolverResult(res.values[:k], res.vectors[:, :k], res.residual_norms[:k], res.converged[:k],
-                        res.gaps[:k], res.iterations, res.matvecs, res.history[:, :k], res.depth, res.block,
-                        np.concatenate([res.values[k:], res.extra_values]),
-                        np.concatenate([res.residual_norms[k:], res.extra_residuals]),
-                        np.concatenate([res.converged[k:], res.extra_converged]))
-
-
-_SPECTRUM_LIMIT = 512  # eigenvalues listed at most (the covariance method knows all d)
-
-
-def _with_all_eigenvalues(res: SolverResult, matrix: np.ndarray) -> SolverResult:
-    """The covariance method knows C: list every eigenvalue beyond k (LAPACK ``syevd``)."""
-    import dataclasses
-
-    k = res.values.size
-    every = np.linalg.eigvalsh(matrix)[::-1][k:_SPECTRUM_LIMIT]
-    return dataclasses.replace(res, extra_values=every, extra_residuals=np.full(every.size, np.nan),
-                               extra_converged=np.ones(every.size, bool))
-
-
 def _orient(vectors: np.ndarray) -> np.ndarray:
     """Flip each column so that its entry of largest magnitude is positive."""
     idx = np.argmax(np.abs(vectors), axis=0)
@@ -292,12 +251,15 @@ class _Job:
         p, info = self.p, self.runner.info
         d, n = p.plan.n_features, p.plan.n_rows
         comp = p.cfg.model.components
-        k_guess = comp if isinstance(comp, int) else min(d, max(2, p.cfg.model.oversample))
+        k_guess = start_count(comp, d, p.cfg.model.oversample)
         self.block = min(d, k_guess + p.cfg.model.oversample)
         if "method" in self.state:
             return MethodChoice(self.state["method"], self.state["method_reason"], self.state["method_estimates"])
+        # the direct method gathers the rows in this process: locally the whole budget, else one worker's
+        client = info.memory_per_worker * (1 if self.runner.distributed else info.workers)
         return choose_method(p.cfg.model.method, n, d, self.block, p.plan.total_bytes,
-                             info.memory_per_worker, info.workers, self._cores())
+                             info.memory_per_worker, info.workers, self._cores(), k=k_guess,
+                             can_cache=info.scheduler != "processes", client_memory=client)
 
     def _cores(self) -> int:
         # a cluster's threads are all cores at work; locally no more than this machine has
@@ -380,24 +342,28 @@ class _Job:
         scale = scale_used if p.cfg.model.scale else None
         d = p.plan.n_features
         fw = feature_weight_array(p.plan.feature_weights)
+        trace = _trace(m, p.cfg.model.center, scale, fw)
+        cache = {"covariance": "not needed (one pass)",
+                 "direct": "not needed (rows held in memory for the decomposition)"}.get(choice.method)
+        solved = self.state.get("stage") == "solved"
         if choice.method == "covariance":
             op = DenseOperator(weight_features(covariance_from(m, p.cfg.model.center, scale), fw))
-            cache = "not needed (one pass)"
+        elif choice.method == "direct":
+            # the rows exactly as the matrix-free product sees them (weighted rows as sqrt(w) x)
+            t = time.perf_counter()
+            op = None if solved else DataOperator(passes.read_all(transform), m.total, trace)
+            self.timings["decode_seconds"] = self.timings.get("decode_seconds", 0.0) + time.perf_counter() - t
         else:
-            op = MatrixFreeOperator(lambda v: passes.product(transform, v), m.total,
-                                    _trace(m, p.cfg.model.center, scale, fw), d)
-            cache = None
+            op = MatrixFreeOperator(lambda v: passes.product(transform, v), m.total, trace, d)
         self.op, self.probe = op, None
-        if self.state.get("stage") == "solved":
-            return self._solution(), op.trace, self.state.get("cache", cache)
-        if cache is None:
+        if solved:
+            return self._solution(), trace, self.state.get("cache", cache)
+        if choice.method == "matrix-free":
             t = time.perf_counter()
             cache = _maybe_cache(passes, self.runner, transform, m.n, d)
             self.timings["cache_seconds"] = time.perf_counter() - t
         t = time.perf_counter()
         res = self._iterate(op, passes, choice)
-        if choice.method == "covariance":
-            res = _with_all_eigenvalues(res, op.matrix)
         passes.release()
         self.timings["solver_seconds"] = self.timings.get("solver_seconds", 0.0) + time.perf_counter() - t
         self.state["cache"] = cache
@@ -409,7 +375,7 @@ class _Job:
         depth = _solver_depth(p.plan.n_features, self.block, self.runner.info.memory_per_worker)
         rng = np.random.default_rng(p.cfg.model.seed)
         resume_state = None
-        if self.state.get("stage") == "solver" and isinstance(p.cfg.model.components, int):
+        if self.state.get("stage") == "solver":
             resume_state = self.ckpt.solver_state()
             rng.bit_generator.state = self.state["rng"]
 
@@ -423,7 +389,10 @@ class _Job:
 
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            res = _solve(p, first or op, rng, depth, callback=checkpoint, state=resume_state)
+            mc = p.cfg.model
+            res = eigensolve(first or op, mc.components, tolerance=mc.tolerance, max_iterations=mc.max_iterations,
+                             oversample=mc.oversample, rng=rng, depth=depth, state=resume_state,
+                             callback=checkpoint)
         self.probe = first.probe() if first is not None else self.ckpt.probe()
         for w in caught:
             log.warning("%s", w.message)
@@ -435,7 +404,7 @@ class _Job:
         self.probe = self.ckpt.probe()
         return SolverResult(a["values"], a["vectors"], a["residual_norms"], a["converged"], a["gaps"],
                             int(a["iterations"]), int(a["matvecs"]), a["history"], int(a["depth"]),
-                            int(a["block"]), *(a[f] for f in _EXTRA if f in a))
+                            int(a["block"]), **{f: str(a[f]) if f == "method" else a[f] for f in _EXTRA if f in a})
 
 
 def _solution_arrays(res: SolverResult) -> dict:
@@ -445,7 +414,7 @@ def _solution_arrays(res: SolverResult) -> dict:
             "block": np.array(res.block), **{f: getattr(res, f) for f in _EXTRA}}
 
 
-_EXTRA = ("extra_values", "extra_residuals", "extra_converged")
+_EXTRA = ("method", "extra_values", "extra_residuals", "extra_converged")
 
 
 def _trace(m: Moments, center: bool, scale, fw=None) -> float:
@@ -464,8 +433,8 @@ def _maybe_cache(passes: DataPasses, runner, transform, n: int, d: int) -> str:
     total = runner.info.memory_per_worker * runner.info.workers
     if runner.info.scheduler == "processes":
         return "re-read every pass (the processes scheduler cannot keep blocks in worker memory)"
-    if decoded > 0.4 * total:
-        return (f"re-read every pass (decoded data {decoded / 2**20:.0f} MiB exceed 40% of the "
+    if decoded > CACHE_SHARE * total:
+        return (f"re-read every pass (decoded data {decoded / 2**20:.0f} MiB exceed {CACHE_SHARE:.0%} of the "
                 f"{total / 2**20:.0f} MiB memory budget)")
     if not passes.cache(transform):
         return (f"re-read every pass (decoded data {decoded / 2**20:.0f} MiB do not fit the memory estimate "

@@ -26,8 +26,16 @@ Expansion uses the residuals ``C u - theta u`` of the active Ritz vectors:
 they are orthogonal to the current basis (Galerkin condition) and span the
 same new directions as ``C Q``, so the subspace is the block Krylov space.
 A pair is locked once its relative residual ``||C u - theta u|| / theta_1``
-is at most ``tolerance`` and every larger pair is locked; the active basis is
-kept orthogonal to the locked vectors (deflation).
+is at most a tenth of ``tolerance`` and every larger pair is locked; the
+active basis is kept orthogonal to the locked vectors (deflation).  The run
+stops when every wanted pair, locked or not, is within ``tolerance``.
+
+With a fraction of the variance as the target (``fraction``, ``trace``),
+``k`` grows inside the same run once every wanted pair is locked and their
+share is short of it: the Ritz values of the current basis, lower bounds of
+the eigenvalues they approximate (Cauchy interlacing), estimate how many
+more are needed.  One counter of operator applications covers the whole run
+and ``max_iterations`` bounds it.
 
 Memory: the basis and its image, ``2 * d * depth * block`` floats, plus the
 locked vectors.
@@ -42,6 +50,7 @@ from typing import Callable
 
 import numpy as np
 
+from .decomposition import SolverResult, gap_to_others, history_array
 from .errors import NotConvergedWarning
 
 __all__ = ["SolverResult", "SolverState", "BlockPowerSolver", "solve"]
@@ -49,49 +58,11 @@ __all__ = ["SolverResult", "SolverState", "BlockPowerSolver", "solve"]
 log = logging.getLogger("pcapipe")
 
 _DROP = 1e-10  # a new direction shorter than this (relative) adds nothing but noise
-
-
-@dataclass(frozen=True)
-class SolverResult:
-    """Eigenpairs found, largest first, with the evidence of convergence.
-
-    ``residual_norms`` are absolute ``||C v - theta v||``; ``history`` has one
-    row per iteration with the relative residual of each wanted pair (NaN
-    before a pair appears); ``gaps`` are relative distances to the nearest
-    other Ritz value, the quantity that limits how fast a pair converges.
-
-    Beyond the k retained pairs, ``extra_values`` (largest first) are the
-    other eigenvalues the method determined (the remaining Ritz values of the
-    block here; every eigenvalue for the covariance method), with
-    ``extra_residuals`` (absolute, NaN when not computed) and
-    ``extra_converged``.  :meth:`spectrum` lists both together.
-    """
-
-    values: np.ndarray
-    vectors: np.ndarray
-    residual_norms: np.ndarray
-    converged: np.ndarray
-    gaps: np.ndarray
-    iterations: int
-    matvecs: int
-    history: np.ndarray
-    depth: int
-    block: int
-    extra_values: np.ndarray = field(default_factory=lambda: np.zeros(0))
-    extra_residuals: np.ndarray = field(default_factory=lambda: np.zeros(0))
-    extra_converged: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
-
-    def spectrum(self) -> dict:
-        """Every eigenvalue determined, largest first: ``values``, ``residuals``,
-        ``converged``, ``gaps`` (relative to the largest, over every value listed)
-        and ``retained`` (True for the k pairs whose vectors are kept)."""
-        values = np.concatenate([self.values, self.extra_values])
-        ref = max(float(values[0]), np.finfo(float).tiny) if values.size else 1.0
-        return {"values": values,
-                "residuals": np.concatenate([self.residual_norms, self.extra_residuals]),
-                "converged": np.concatenate([self.converged, self.extra_converged]).astype(bool),
-                "gaps": np.array([_gap(v, values) / ref for v in values]),
-                "retained": np.arange(values.size) < self.values.size}
+# Pairs are locked only at a tenth of the tolerance: a vector kept orthogonal to locked
+# vectors with residual r cannot get its own residual much below r, so locking at the
+# tolerance itself can stall the next pair just above it.  The run still stops as soon as
+# every wanted pair, locked or active, is within the tolerance.
+_LOCK = 0.1
 
 
 @dataclass
@@ -106,21 +77,23 @@ class SolverState:
     iterations: int = 0
     matvecs: int = 0
     history: list = field(default_factory=list)
+    k: int = 0  # pairs wanted now (grows when the target is a fraction of the variance)
 
     def arrays(self) -> dict:
         """Plain arrays for ``numpy.savez`` (no pickle)."""
-        hist = np.array(self.history, dtype=float) if self.history else np.zeros((0, 0))
+        width = max((len(r) for r in self.history), default=0)
         return {"basis": self.basis, "image": self.image, "locked": self.locked,
                 "locked_values": self.locked_values, "locked_residuals": self.locked_residuals,
                 "iterations": np.array(self.iterations), "matvecs": np.array(self.matvecs),
-                "history": hist}
+                "history": history_array(self.history, width), "k": np.array(self.k)}
 
     @classmethod
     def from_arrays(cls, a) -> "SolverState":
-        hist = [list(row) for row in np.asarray(a["history"])]
+        hist = [[v for v in row if not np.isnan(v)] for row in np.asarray(a["history"])]
+        k = int(a["k"]) if "k" in a else 0
         return cls(np.asarray(a["basis"]), np.asarray(a["image"]), np.asarray(a["locked"]),
                    np.asarray(a["locked_values"]), np.asarray(a["locked_residuals"]),
-                   int(a["iterations"]), int(a["matvecs"]), hist)
+                   int(a["iterations"]), int(a["matvecs"]), hist, k)
 
 
 def _project_out(p: np.ndarray, bases) -> np.ndarray:
@@ -177,20 +150,28 @@ class BlockPowerSolver:
         Power iterates kept in the basis; 1 is plain subspace iteration.
     start : ndarray (d, m), optional
         Initial block (warm start); random columns complete it.
+    fraction, trace : float, optional
+        Grow ``k`` until the locked eigenvalues sum to at least
+        ``fraction * trace`` (or ``k = d``).
     """
 
     def __init__(self, matmat: Callable, n_features: int, k: int, *, tolerance: float,
                  max_iterations: int, oversample: int, rng: np.random.Generator,
-                 depth: int = 8, start: np.ndarray | None = None):
+                 depth: int = 8, start: np.ndarray | None = None,
+                 fraction: float | None = None, trace: float | None = None):
         if not 1 <= k <= n_features:
             raise ValueError(f"k must be in [1, {n_features}], got {k}")
+        if fraction is not None and not (trace and trace > 0):
+            raise ValueError("a fraction of the variance needs the operator's positive trace")
         self.matmat = matmat
         self.d = n_features
         self.k = k
         self.tolerance = tolerance
         self.max_iterations = max_iterations
+        self._oversample = oversample
         self.block = min(k + oversample, n_features)
         self.oversample = self.block - k
+        self.fraction, self.trace = fraction, trace
         self.depth = max(1, depth)
         self.rng = rng
         self._start = start
@@ -210,7 +191,7 @@ class BlockPowerSolver:
             s = np.asarray(self._start, dtype=np.float64)[:, :b]
             p[:, : s.shape[1]] = s
         empty = np.zeros((d, 0))
-        self.state = SolverState(empty, empty, empty.copy(), np.zeros(0), np.zeros(0))
+        self.state = SolverState(empty, empty, empty.copy(), np.zeros(0), np.zeros(0), k=self.k)
         q = _orthonormal_block(p, [])
         self.state.basis = q
         self.state.image = self._apply(q)
@@ -218,6 +199,47 @@ class BlockPowerSolver:
     def resume(self, state: SolverState) -> None:
         """Continue from a saved state."""
         self.state = state
+        if state.k > self.k:
+            self._set_k(state.k)
+        state.k = self.k
+
+    def _set_k(self, k: int) -> None:
+        self.k = k
+        self.block = min(k + self._oversample, self.d)
+        self.oversample = self.block - k
+
+    def _retarget(self, theta: np.ndarray) -> None:
+        """With a fraction target, set ``k`` to the count the current estimates need.
+
+        Ritz values are at most the eigenvalues of the same rank (Cauchy
+        interlacing), so the count at which locked values plus Ritz values
+        reach the fraction is at least the count the true spectrum needs; when
+        they do not reach it, the rest of the spectrum is taken as flat at the
+        smallest Ritz value (fewer than needed when the spectrum decays).
+        """
+        st = self.state
+        if self.fraction is None:
+            return
+        locked = st.locked.shape[1]
+        share = float(st.locked_values.sum()) / self.trace
+        if share >= self.fraction - 1e-12:
+            k = locked
+        else:
+            reach = np.flatnonzero(share + np.cumsum(np.maximum(theta, 0.0)) / self.trace >= self.fraction - 1e-12)
+            if reach.size:
+                k = locked + int(reach[0]) + 1
+            else:
+                # beyond the basis, assume the rest is no larger than the last Ritz value:
+                # a lower bound on the count still needed for a decaying spectrum
+                missing = (self.fraction - share) * self.trace - float(np.maximum(theta, 0.0).sum())
+                last = max(float(theta[-1]) if theta.size else 0.0, self.trace * 1e-12)
+                k = max(self.k, locked + theta.size + int(np.ceil(missing / last)))
+        k = min(self.d, max(k, locked, 1))
+        if k != self.k:
+            log.debug("variance share %.4g of %.4g with %d components locked: looking for %d",
+                      share, self.fraction, locked, k)
+            self._set_k(k)
+            st.k = k
 
     # -- one iteration -------------------------------------------------------
     def _ritz(self):
@@ -242,7 +264,7 @@ class BlockPowerSolver:
         st = self.state
         want = self.k - st.locked.shape[1]
         n = 0
-        while n < min(want, theta.size) and rnorm[n] <= self.tolerance * ref:
+        while n < min(want, theta.size) and rnorm[n] <= _LOCK * self.tolerance * ref:
             n += 1
         if n:
             st.locked = np.hstack([st.locked, u[:, :n]])
@@ -261,8 +283,11 @@ class BlockPowerSolver:
         theta, u, cu, rnorm, res = theta[n_lock:], u[:, n_lock:], cu[:, n_lock:], rnorm[n_lock:], res[:, n_lock:]
         # The basis must not hold the pairs just locked, or result() would count them twice.
         st.basis, st.image = u, cu
+        self._retarget(theta)
         remaining = self.k - st.locked.shape[1]
         if remaining == 0:
+            return True
+        if theta.size >= remaining and (rnorm[:remaining] <= self.tolerance * ref).all():
             return True
         if st.matvecs >= self.max_iterations:
             return True
@@ -311,32 +336,34 @@ class BlockPowerSolver:
         ref = max(values[0], np.finfo(float).tiny) if values.size else 1.0
         converged = resid <= self.tolerance * ref
         every = np.sort(np.concatenate([st.locked_values, theta]))[::-1]
-        gaps = np.array([_gap(v, every) / ref for v in values])
-        # the rest of the block: estimates from below (Cauchy interlacing) unless converged
+        gaps = np.array([gap_to_others(v, every) / ref for v in values])
+        # the block's other Ritz values: estimates of the eigenvalues after k
         extra = slice(want, want + max(self.oversample, 0))
+        extra_values, extra_res = theta[extra], rnorm[extra]
         return SolverResult(values, vectors, resid, converged, gaps, st.iterations, st.matvecs,
-                            np.array(st.history, dtype=float), self.depth, self.block,
-                            theta[extra], rnorm[extra], rnorm[extra] <= self.tolerance * ref)
-
-
-def _gap(value: float, every: np.ndarray) -> float:
-    others = np.abs(every - value)
-    others = others[others > 0]
-    return float(others.min()) if others.size else np.inf
+                            history_array(st.history, self.k), self.depth, self.block,
+                            extra_values=extra_values, extra_residuals=extra_res,
+                            extra_converged=extra_res <= self.tolerance * ref)
 
 
 def solve(matmat: Callable, n_features: int, k: int, *, tolerance: float, max_iterations: int,
           oversample: int, rng: np.random.Generator, depth: int = 8, start=None,
-          state: SolverState | None = None, callback: Callable | None = None) -> SolverResult:
+          state: SolverState | None = None, callback: Callable | None = None,
+          fraction: float | None = None, trace: float | None = None) -> SolverResult:
     """Run :class:`BlockPowerSolver` to convergence or to the iteration limit.
 
     ``callback(solver)`` is called after every operator application (the
-    engine checkpoints there).  Emits one :class:`NotConvergedWarning` naming
-    the components that did not reach the tolerance, with the residual reached
-    and the gap to their neighbours.
+    engine checkpoints there).  With ``fraction`` (and the operator's
+    ``trace``), ``k`` is the starting count and grows inside the run; the
+    result then holds the smallest count whose eigenvalues reach the fraction
+    (the others found move to the extra eigenvalues).  Emits one
+    :class:`NotConvergedWarning` naming the retained components that did not
+    reach the tolerance, with the residual reached and the gap to their
+    neighbours.
     """
     solver = BlockPowerSolver(matmat, n_features, k, tolerance=tolerance, max_iterations=max_iterations,
-                              oversample=oversample, rng=rng, depth=depth, start=start)
+                              oversample=oversample, rng=rng, depth=depth, start=start,
+                              fraction=fraction, trace=trace)
     if state is None:
         solver.initialize()
         if callback:
@@ -347,6 +374,10 @@ def solve(matmat: Callable, n_features: int, k: int, *, tolerance: float, max_it
         if callback:
             callback(solver)
     res = solver.result()
+    if fraction is not None:
+        reach = np.flatnonzero(np.cumsum(res.values) / trace >= fraction - 1e-12)
+        res = res.retain(int(reach[0]) + 1 if reach.size else res.values.size)
+    k = res.values.size
     if not res.converged.all():
         bad = np.flatnonzero(~res.converged)
         ref = max(res.values[0], np.finfo(float).tiny)

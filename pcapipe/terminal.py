@@ -10,7 +10,7 @@ from .compute import cores, physical_memory
 from .config import format_size, parse_memory
 from .errors import InputError
 from .formats import BEYOND, SPECTRUM_HEADERS, flag, FLAG_NOTES, percent, sig, spectrum_cells, spectrum_shown
-from .operators import choose_method
+from .methods import choose_method
 from .weighted import weights_text
 
 __all__ = ["check", "check_report", "describe_text", "describe_json", "top_loadings", "spectrum_table"]
@@ -74,7 +74,9 @@ def check(config, overrides=()):
     comp = cfg.model.components
     k = comp if isinstance(comp, int) else min(d, max(2, cfg.model.oversample))
     block = min(d, k + cfg.model.oversample)
-    choice = choose_method(cfg.model.method, n, d, block, plan.total_bytes, memory, workers, threads)
+    choice = choose_method(cfg.model.method, n, d, block, plan.total_bytes, memory, workers, threads,
+                           k=k, can_cache=cfg.compute.scheduler != "processes",
+                           client_memory=memory * (1 if cfg.compute.scheduler.startswith("tcp://") else workers))
     shared = cfg.compute.scheduler in ("threads", "synchronous")
     accumulator = 8 * d * d if choice.method == "covariance" else 2 * 8 * d * block
     layout = layout_for(plan.pieces(), d, workers=workers, memory_per_worker=memory,

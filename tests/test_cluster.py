@@ -38,7 +38,7 @@ from pcapipe.errors import ClusterError
 # Well separated eigenvalues (made up for the test) so both methods converge
 # in a few dozen passes; the mean of 50 makes centering matter.
 _SPECTRUM = [9.0, 5.0, 3.0, 2.0, 1.5, 1.0, 0.8, 0.6, 0.5, 0.4]
-_METHODS = ["covariance", "matrix-free"]
+_METHODS = ["covariance", "direct", "matrix-free"]
 _TOLERANCE = 1e-12  # the bound on differences between schedulers
 _MEMORY = "1GiB"    # per worker, everywhere, so block sizes and caching are the same
 _MEMORY_BYTES = 2**30  # 1 GiB (IEC 80000-13 binary prefix)

@@ -199,9 +199,9 @@ BAD = [
     (_with(model={"components": 0}), "model.components: 0 is below 1; use an integer >= 1"),
     (_with(model={"components": -2}), "model.components: -2 is below 1"),
     (_with(model={"method": "fast"}),
-     'model.method: "fast" is not one of auto, covariance, matrix-free'),
+     'model.method: "fast" is not one of auto, covariance, direct, matrix-free'),
     (_with(model={"method": "covarience"}), 'model.method: "covarience" is not one of '
-     'auto, covariance, matrix-free; did you mean "covariance"?'),  # typo
+     'auto, covariance, direct, matrix-free; did you mean "covariance"?'),  # typo
     (_with(model={"tolerance": 0}), "model.tolerance: 0.0 is not strictly between 0 and 1; "
      "e.g. tolerance = 1e-09"),
     (_with(model={"tolerance": 1.0}), "model.tolerance: 1.0 is not strictly between 0 and 1"),
@@ -293,7 +293,7 @@ def test_file_errors_name_the_file(tmp_path, monkeypatch):
         method = "fast"
         """)
     assert _error("configs/x.toml") == (
-        'configs/x.toml: model.method: "fast" is not one of auto, covariance, matrix-free')
+        'configs/x.toml: model.method: "fast" is not one of auto, covariance, direct, matrix-free')
 
 
 def test_toml_date_value_reports_its_type(tmp_path):

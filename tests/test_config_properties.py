@@ -33,7 +33,7 @@ valid_config = st.fixed_dictionaries({
                                 st.floats(min_value=1e-6, max_value=1 - 1e-6, allow_nan=False)),
         "center": st.booleans(),
         "scale": st.booleans(),
-        "method": st.sampled_from(["auto", "covariance", "matrix-free"]),
+        "method": st.sampled_from(["auto", "covariance", "direct", "matrix-free"]),
         "tolerance": st.floats(min_value=1e-15, max_value=0.5),
         "max_iterations": st.integers(1, 10_000),
         "oversample": st.integers(0, 100),

@@ -26,7 +26,7 @@ ANGLE_MAX = 1e-6  # largest principal angle between loading subspaces, radians (
 # scores against (X - mean) @ our loadings: the same products in another order, so only
 # rounding of a <= 64-term dot product differs (common practice, no source)
 SCORE_RTOL = 1e-11
-METHODS = ["covariance", "matrix-free"]
+METHODS = ["covariance", "direct", "matrix-free"]
 SPIKES = [25.0, 12.0, 6.0, 3.0]  # population eigenvalues above a flat tail
 
 

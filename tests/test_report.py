@@ -51,7 +51,7 @@ def small(tmp_path_factory):
             "when": np.datetime64("2026-03-02T00:00", "ms") + np.arange(n) * np.timedelta64(5, "m"),
             "level": rng.standard_normal(n)}
     write_parquet(tmp / "in", x, files=3, row_group=1000, keep=keep)
-    cfg = make_config(str(tmp / "in" / "*.parquet"), tmp / "run", model={"components": 4, "scale": True},
+    cfg = make_config(str(tmp / "in" / "*.parquet"), tmp / "run", model={"components": 4, "scale": True, "method": "matrix-free"},
                       input={"keep": list(keep)})
     return pcapipe.run(cfg)
 

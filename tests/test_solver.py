@@ -290,3 +290,59 @@ def test_k_outside_one_to_d_is_refused(k):
     with pytest.raises(ValueError, match=r"k must be in \[1, 10\]"):
         BlockPowerSolver(lambda v: c @ v, 10, k, tolerance=TOL, max_iterations=10, oversample=0,
                          rng=np.random.default_rng(0))
+
+
+# Fractions reached well before the basis could hold the whole space (a run given a final k
+# near d converges by exhausting the space in 1-3 applications, which no growing run can match;
+# measured ratios for such cases are in DEVELOPERS.md).
+@pytest.mark.parametrize(
+    "spectrum, fraction, oversample",
+    [
+        ("geometric", 0.5, 2),   # 4 components, the start block grows once or twice
+        ("geometric", 0.9, 8),   # 11 components from a start of 8
+        ("geometric", 0.99, 8),  # 21 components: grows more than twice its start
+        ("spiked", 0.5, 2),      # reached inside the spikes
+        ("algebraic", 0.5, 8),   # 9 components with small relative gaps
+    ],
+)
+def test_fraction_grows_k_inside_one_run(spectrum, fraction, oversample):
+    values = SPECTRA[spectrum]()
+    c = _matrix(values, seed=7)
+    cum = np.cumsum(values) / values.sum()
+    k_ref = int(np.flatnonzero(cum >= fraction)[0]) + 1  # smallest count reaching the fraction
+    res = solve(lambda v: c @ v, c.shape[0], min(c.shape[0], max(2, oversample)), tolerance=TOL,
+                max_iterations=2000, oversample=oversample, rng=np.random.default_rng(0),
+                fraction=fraction, trace=float(np.trace(c)))
+    assert res.values.size == k_ref
+    ref_values, ref_vectors = _reference(c, k_ref)
+    np.testing.assert_allclose(res.values, ref_values, rtol=VALUE_RTOL)
+    assert res.converged.all()
+    _assert_orthonormal(res.vectors)
+    assert res.history.shape == (res.iterations, k_ref)
+    # one counter for the whole run: a run told the final k from the start needs about as many
+    fixed = _solve(c, k_ref, oversample=oversample)
+    assert res.matvecs <= 1.5 * fixed.matvecs + 2, (res.matvecs, fixed.matvecs)
+
+
+def test_fraction_run_stops_at_max_iterations_in_total():
+    c = _matrix(SPECTRA["slow"](), seed=8)
+    with pytest.warns(NotConvergedWarning):
+        res = solve(lambda v: c @ v, c.shape[0], 2, tolerance=TOL, max_iterations=15, oversample=2,
+                    rng=np.random.default_rng(0), fraction=0.9, trace=float(np.trace(c)))
+    assert res.matvecs == 15
+
+
+def test_extra_ritz_values_are_estimates_below_the_eigenvalues():
+    values = SPECTRA["spiked"]()
+    c = _matrix(values, seed=9)
+    res = _solve(c, 3, oversample=6)
+    spec = res.spectrum()
+    assert spec["values"].size == 3 + res.extra_values.size and res.extra_values.size == 6
+    assert spec["retained"].tolist() == [True] * 3 + [False] * 6
+    # Ritz values never exceed the eigenvalue of the same rank (Cauchy interlacing; Parlett 1998,
+    # "The Symmetric Eigenvalue Problem", section 10.1)
+    ref = np.sort(values)[::-1]
+    assert (res.extra_values <= ref[3:9] * (1 + 1e-12)).all()
+    # the flags say which ones reached the tolerance, checked against their true residual norms
+    np.testing.assert_array_equal(res.extra_converged, res.extra_residuals <= TOL * res.values[0])
+    assert np.isfinite(spec["gaps"]).all()

@@ -21,7 +21,7 @@ from pcapipe.checkpoint import Checkpoint
 from pcapipe.moments import batch_moments
 from pcapipe.weighted import reliability_factor
 
-METHODS = ["covariance", "matrix-free"]
+METHODS = ["covariance", "direct", "matrix-free"]
 
 
 def _eigh(c, k):
