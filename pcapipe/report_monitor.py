@@ -123,7 +123,10 @@ def monitor_section(directory: str, manifest: dict, time: str | None = None):
     figs = {"control": (fig_control_chart(points, limits, time),
                         f"T\u00b2 against the training-row limit (Tracy, Young & Mason 1992) and SPE against "
                         f"Box's limit (Nomikos & MacGregor 1995) at {limits['confidence']:g}; the limits assume "
-                        "independent, roughly normal rows, and autocorrelated rows cross them more often.")}
+                        "independent, roughly normal rows, and autocorrelated rows cross them more often. "
+                        "Each point is the largest value of a bin of consecutive rows, so red points "
+                        "overstate how often single rows cross a limit: the share of rows above each "
+                        "limit is given below the chart.")}
     counts = manifest.get("monitor", {}).get("training_alarms") or {}
     notes = []
     text = ""
