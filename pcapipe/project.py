@@ -25,6 +25,7 @@ from .scoring import out_schema, score_batch, score_tables, write_part
 from .monitor import MonitorSpec
 from .tasks import Transform
 from .weighted import input_scale
+from .writer import path_inside
 
 __all__ = ["Projector", "projector_for", "project_frame", "project_paths", "project_to_directory"]
 
@@ -171,6 +172,22 @@ def _write_part(pr: Projector, path: str, keep, target: str) -> str:
     return target
 
 
+def _check_out_dir(out_dir: str, data, paths) -> None:
+    """Refuse an ``--out`` that holds an input file or lies inside an input directory.
+
+    Part files written there would be read as data by the next run over that
+    directory (or by this projection's own glob).
+    """
+    out = os.path.realpath(out_dir)
+    patterns = [data] if isinstance(data, (str, os.PathLike)) else list(data)
+    roots = [os.path.realpath(os.fspath(p)) for p in patterns if os.path.isdir(os.fspath(p))]
+    clash = next((p for p in paths if path_inside(os.path.realpath(p), out)), None)
+    clash = clash or next((r for r in roots if path_inside(out, r)), None)
+    if clash is not None:
+        raise OutputError(f"--out: {out_dir} overlaps the input {clash}; part files written there would be "
+                          "read as input next time: choose an --out directory outside every input")
+
+
 def project_to_directory(result, data, out_dir: str, keep=None, scheduler: str = "threads") -> list[str]:
     """Write ``part-NNNNN.parquet`` under ``out_dir``, one per input file in sorted path order.
 
@@ -180,13 +197,14 @@ def project_to_directory(result, data, out_dir: str, keep=None, scheduler: str =
         An input matches nothing, is not Parquet, or lacks a feature column.
     OutputError
         ``out_dir`` already holds part files (they would mix with the new
-        ones), or cannot be created.
+        ones), overlaps an input, or cannot be created.
     """
     import dask
 
     pr = projector_for(result)
     paths, names = _checked_paths(pr, data)
     keep = _keep_for(pr, names, keep)
+    _check_out_dir(out_dir, data, paths)
     if os.path.isdir(out_dir) and any(n.startswith("part-") and n.endswith(".parquet") for n in os.listdir(out_dir)):
         raise OutputError(f"--out: {out_dir} already holds part-*.parquet files; remove them or choose "
                           "another directory")

@@ -26,7 +26,7 @@ import pyarrow.parquet as pq
 
 from .errors import OutputError
 
-__all__ = ["RunWriter", "FORMAT_VERSION", "MARKER", "write_json_atomic", "partial_dir_for", "is_pcapipe_run"]
+__all__ = ["path_inside", "RunWriter", "FORMAT_VERSION", "MARKER", "write_json_atomic", "partial_dir_for", "is_pcapipe_run"]
 
 FORMAT_VERSION = 2  # 2: spectrum.parquet and the manifest keys rows/features (issue 12)
 # Created first in every .incomplete sibling: proof that the directory is ours to delete.
@@ -83,7 +83,7 @@ def _contents(directory: str, limit: int = 5) -> str:
     return ", ".join(shown) + more
 
 
-def _inside(path: str, root: str) -> bool:
+def path_inside(path: str, root: str) -> bool:
     """``path`` equals ``root`` or lies below it (both absolute and normalised)."""
     return path == root or path.startswith(root.rstrip(os.sep) + os.sep)
 
@@ -172,19 +172,19 @@ class RunWriter:
         for out in {os.path.realpath(self.directory), os.path.realpath(self.partial)}:
             for pattern in patterns:
                 if glob.has_magic(pattern):
-                    if any(_inside(p, out) for p in _spellings(_literal_root(pattern)[0])):
+                    if any(path_inside(p, out) for p in _spellings(_literal_root(pattern)[0])):
                         raise self._overlap(f"contains the input path {pattern}")
                     if _glob_reaches(pattern, out):
                         raise self._overlap(f"lies where the input pattern {pattern} would find its "
                                             "files (the run's own Parquet files would be read as input)")
                     continue
                 for p in _spellings(pattern):
-                    if _inside(p, out):
+                    if path_inside(p, out):
                         raise self._overlap(f"{'is' if p == out else 'contains'} the input path {pattern}")
-                    if os.path.isdir(p) and _inside(out, p):
+                    if os.path.isdir(p) and path_inside(out, p):
                         raise self._overlap(f"lies inside the input directory {pattern} (the run's own "
                                             "Parquet files would be read as input)")
-            if config_file and any(_inside(p, out) for p in _spellings(config_file)):
+            if config_file and any(path_inside(p, out) for p in _spellings(config_file)):
                 raise OutputError(
                     f"output.directory: {self.directory} contains the config file {config_file}; "
                     "choose an output.directory that does not hold the config file"
@@ -194,7 +194,7 @@ class RunWriter:
         """After expansion: no input file (under any spelling) may lie inside the output."""
         for out in {os.path.realpath(self.directory), os.path.realpath(self.partial)}:
             for f in files:
-                if any(_inside(p, out) for p in _spellings(f)):
+                if any(path_inside(p, out) for p in _spellings(f)):
                     raise self._overlap(f"contains the input file {f}")
 
     def _overlap(self, what: str) -> OutputError:

@@ -169,3 +169,20 @@ def test_cli_project(tmp_path, rng):
     assert done.returncode == 2
     assert done.stderr.startswith("error: ") and "bad.parquet" in done.stderr and "'f1'" in done.stderr
     assert "Traceback" not in done.stderr
+
+
+@pytest.mark.parametrize("where", [
+    "in",          # --out is the input directory: the next run over in/ would read the parts as data
+    "in/proj",     # --out below the input directory given on the command line
+    ".",           # --out contains the input directory
+])
+def test_cli_project_refuses_an_out_directory_overlapping_the_input(tmp_path, rng, where):
+    res, paths = _run(tmp_path, _data(rng))
+    before = {p: open(p, "rb").read() for p in paths}
+    listing = sorted(os.listdir(tmp_path / "in"))
+    done = run_cli("project", res.directory, tmp_path / "in", "--out", tmp_path / where)
+    assert done.returncode == 2, done.stderr
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: --out:") and "overlaps the input" in lines[0]
+    assert sorted(os.listdir(tmp_path / "in")) == listing
+    assert all(open(p, "rb").read() == data for p, data in before.items())
