@@ -7,6 +7,7 @@ import logging
 import os
 import subprocess
 import sys
+import time
 
 import numpy as np
 import pyarrow as pa
@@ -125,3 +126,26 @@ def retained(res, column="eigenvalue"):
     """``column`` of the spectrum on the retained components (PC1..PCk) only, as a numpy array."""
     spec = res.spectrum
     return spec.loc[spec["retained"], column].to_numpy()
+
+
+def wait_for_checkpoint(partial, proc, min_passes=1, stage=None, timeout=120.0) -> dict:
+    """Poll ``partial``'s checkpoint until it records ``min_passes`` passes (at ``stage``, if given).
+
+    Fails the test when ``proc`` (the run) ends first or nothing appears within ``timeout``; returns
+    the checkpoint state.
+    """
+    state = os.path.join(partial, "checkpoint", "state.json")
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            pytest.fail(f"the run ended before it could be interrupted: {proc.stderr.read()}")
+        try:
+            with open(state) as f:
+                s = json.load(f)
+            if s["passes"] >= min_passes and stage in (None, s["stage"]):
+                return s
+        except (OSError, ValueError, KeyError):
+            pass
+        time.sleep(0.01)
+    proc.kill()
+    pytest.fail(f"no checkpoint{f' at stage {stage}' if stage else ''} within {timeout} s")

@@ -18,7 +18,6 @@ import shutil
 import signal
 import subprocess
 import sys
-import time
 
 import numpy as np
 import pyarrow as pa
@@ -26,7 +25,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import pcapipe
-from conftest import ROOT, known_spectrum, make_config, run_cli, write_parquet, write_toml
+from conftest import ROOT, wait_for_checkpoint, known_spectrum, make_config, run_cli, write_parquet, write_toml
 
 _NOISE = ("Traceback", "asyncio", "Task was destroyed", "Exception ignored", "CommClosedError",
           "distributed.", "RuntimeWarning", "tornado")
@@ -308,23 +307,6 @@ def _start_on(cluster, cluster_job, tmp_path):
     return proc, config
 
 
-def _wait_for_checkpoint(partial, proc, min_passes=1, timeout=120.0):
-    state = os.path.join(partial, "checkpoint", "state.json")
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if proc.poll() is not None:
-            pytest.fail(f"the run ended before it could be interrupted: {proc.stderr.read()}")
-        try:
-            with open(state) as f:
-                if json.load(f)["passes"] >= min_passes:
-                    return
-        except (OSError, ValueError, KeyError):
-            pass
-        time.sleep(0.01)
-    proc.kill()
-    pytest.fail("no checkpoint within the timeout")
-
-
 def _resume(line: str, *extra):
     command = line.split("continue with: ", 1)[1].split(" once ")[0]
     words = shlex.split(command)
@@ -344,7 +326,7 @@ def test_lost_scheduler_exits_3_with_one_line_and_resumes(live_cluster, cluster_
     before = _digests(root / "data")
     proc, config = _start_on(live_cluster, cluster_job, tmp_path)
     try:
-        _wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
+        wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
         os.killpg(live_cluster.procs[0].pid, signal.SIGKILL)  # the scheduler
         _, stderr = proc.communicate(timeout=120)
     finally:
@@ -370,7 +352,7 @@ def test_ctrl_c_on_a_cluster_is_quiet_and_resumable(live_cluster, cluster_job, t
     root, _, ref = cluster_job
     proc, config = _start_on(live_cluster, cluster_job, tmp_path)
     try:
-        _wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
+        wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
         proc.send_signal(signal.SIGINT)
         _, stderr = proc.communicate(timeout=120)
     finally:
@@ -483,7 +465,7 @@ def test_resume_command_after_ctrl_c_keeps_the_overrides(cluster_job, tmp_path):
                              "--set", "model.components=3"], cwd=ROOT, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     try:
-        _wait_for_checkpoint(str(out) + ".incomplete", proc)
+        wait_for_checkpoint(str(out) + ".incomplete", proc)
         proc.send_signal(signal.SIGINT)
         _, stderr = proc.communicate(timeout=120)
     finally:
@@ -558,7 +540,7 @@ def test_ctrl_c_in_a_terminal_on_a_local_cluster_is_quiet(cluster_job, tmp_path)
                             cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             start_new_session=True)
     try:
-        _wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
+        wait_for_checkpoint(str(tmp_path / "out.incomplete"), proc)
         os.killpg(proc.pid, signal.SIGINT)
         _, stderr = proc.communicate(timeout=120)
     finally:

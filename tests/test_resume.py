@@ -11,14 +11,13 @@ import os
 import signal
 import subprocess
 import sys
-import time
 
 import numpy as np
 import pandas as pd
 import pytest
 
 import pcapipe
-from conftest import ROOT, known_spectrum, make_config, run_cli, write_parquet, write_toml, retained
+from conftest import ROOT, wait_for_checkpoint, known_spectrum, make_config, run_cli, write_parquet, write_toml, retained
 
 # Slowly decaying spectrum so the matrix-free solver needs many passes
 # (made up for the test; the values only need gaps that converge slowly).
@@ -47,24 +46,6 @@ def _start(config_path, *extra):
                             cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
-def _wait_for_stage(partial, stage, min_passes, proc, timeout=120.0):
-    state = os.path.join(partial, "checkpoint", "state.json")
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if proc.poll() is not None:
-            pytest.fail(f"run ended before it could be interrupted: {proc.stderr.read()}")
-        try:
-            with open(state) as f:
-                s = json.load(f)
-            if s["stage"] == stage and s["passes"] >= min_passes:
-                return s
-        except (OSError, ValueError, KeyError):
-            pass
-        time.sleep(0.01)
-    proc.kill()
-    pytest.fail(f"no checkpoint at stage {stage} within {timeout} s")
-
-
 def _same(a, b):
     np.testing.assert_allclose(retained(a), retained(b), rtol=1e-12)
     np.testing.assert_allclose(a.loadings.to_numpy(), b.loadings.to_numpy(), atol=1e-12)
@@ -81,7 +62,7 @@ def test_interrupted_run_resumes_to_the_same_answer(slow_job, tmp_path, sig):
     path = write_toml(tmp_path / "job.toml", cfg)
     proc = _start(path)
     partial = str(out) + ".incomplete"
-    seen = _wait_for_stage(partial, "solver", 3, proc)
+    seen = wait_for_checkpoint(partial, proc, 3, stage="solver")
     proc.send_signal(sig)
     _, err = proc.communicate(timeout=60)
     if sig == signal.SIGINT:
@@ -105,7 +86,7 @@ def test_resume_refuses_changed_config_or_inputs(slow_job, tmp_path):
     cfg["output"]["directory"] = str(tmp_path / "run")
     path = write_toml(tmp_path / "job.toml", cfg)
     proc = _start(path)
-    _wait_for_stage(str(tmp_path / "run") + ".incomplete", "solver", 2, proc)
+    wait_for_checkpoint(str(tmp_path / "run") + ".incomplete", proc, 2, stage="solver")
     proc.kill()
     proc.communicate(timeout=60)
     # a model key changed
