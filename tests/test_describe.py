@@ -175,7 +175,9 @@ def _check_config(tmp_path, scheduler, timeout=10.0):
 def test_check_contacts_the_scheduler_and_lists_its_workers(tmp_path):
     from distributed import LocalCluster
 
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False, protocol="tcp://", host="127.0.0.1",
+    # Worker processes of their own: an in-process worker measures the whole pytest process against
+    # its 512 MiB limit, and late in the suite that process is larger, so the workers shut down.
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, protocol="tcp://", host="127.0.0.1",
                       dashboard_address="127.0.0.1:0", memory_limit="512MiB") as cluster:
         done = run_cli("check", _check_config(tmp_path, cluster.scheduler_address))
     assert done.returncode == 0, done.stderr
