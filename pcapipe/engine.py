@@ -120,8 +120,22 @@ def _check_finite(plan: Plan, m: Moments, center: bool) -> None:
 
 
 def _moments_pass(p: Prepared, passes: DataPasses, full: bool) -> Moments:
+    """The moments pass (a second one for impute-mean), checked by :func:`_missing_rule`."""
     mode = p.cfg.input.missing
-    m = passes.moments(full, mode)
+    return _missing_rule(p, passes.moments(full, mode), lambda fill: passes.moments(full, mode, fill=fill))
+
+
+def _missing_rule(p: Prepared, first: Moments, again) -> Moments:
+    """Apply the missing rule to the moments of a pass; ``again(fill)`` recomputes them with a fill (impute-mean).
+
+    Raises
+    ------
+    InputError
+        Missing values under ``fail``, a feature with nothing to impute,
+        weights that leave nothing to fit, overflow, or fewer than 2 rows.
+    """
+    mode = p.cfg.input.missing
+    m = first
     if m.missing.any():
         if mode == "fail":
             raise _missing_error(p.plan, m)
@@ -134,7 +148,7 @@ def _moments_pass(p: Prepared, passes: DataPasses, full: bool) -> Moments:
                     f"{m.rows_seen} rows, so input.missing = \"impute-mean\" has no mean to fill in; "
                     "leave them out with input.exclude"
                 )
-            m = passes.moments(full, mode, fill=m.valid_mean)
+            m = again(m.valid_mean)
     if m.weight is not None:
         check_total_weight(p.plan, m)
     _check_finite(p.plan, m, p.cfg.model.center)
@@ -246,6 +260,7 @@ class _Job:
         self.state = ckpt.state
         self.timings = dict(self.state.get("timings", {}), **p.timings)
         self.resumed = self.state.get("stage")
+        self.rows = None  # the direct method's raw rows, held from the one read to the decomposition
 
     def _choose(self):
         p, info = self.p, self.runner.info
@@ -331,7 +346,13 @@ class _Job:
             log.info("resuming from the checkpoint after stage %r", self.resumed)
             return self.ckpt.moments()
         t = time.perf_counter()
-        m = _moments_pass(self.p, passes, full=choice.method == "covariance")
+        mode = self.p.cfg.input.missing
+        if choice.method == "direct":
+            # one read: the raw rows stay in memory and the moments come from them
+            self.rows, first = passes.read_once(mode)
+            m = _missing_rule(self.p, first, lambda fill: passes.rows_moments(self.rows, mode, fill))
+        else:
+            m = _moments_pass(self.p, passes, full=choice.method == "covariance")
         _preprocessing(self.p, m)  # bad input (constant features) must fail before a checkpoint exists
         self.timings["moments_seconds"] = time.perf_counter() - t
         self._save("moments", choice, passes, moments=m)
@@ -351,7 +372,10 @@ class _Job:
         elif choice.method == "direct":
             # the rows exactly as the matrix-free product sees them (weighted rows as sqrt(w) x)
             t = time.perf_counter()
-            op = None if solved else DataOperator(passes.read_all(transform), m.total, trace)
+            if not solved and self.rows is None:  # resumed after the moments: read the rows again
+                self.rows, _ = passes.read_once(p.cfg.input.missing)
+            op = None if solved else DataOperator(passes.preprocessed(self.rows, transform, m.n), m.total, trace)
+            self.rows = None
             self.timings["decode_seconds"] = self.timings.get("decode_seconds", 0.0) + time.perf_counter() - t
         else:
             op = MatrixFreeOperator(lambda v: passes.product(transform, v), m.total, trace, d)

@@ -25,7 +25,7 @@ from . import tasks
 from .compute import cores as _cores
 from .errors import InputError
 from .layout import Layout, layout_for
-from .moments import Moments, merge_into
+from .moments import Moments, merge_into, tree_merge
 from .plan import Plan
 from .reader import ReadSpec
 
@@ -152,29 +152,72 @@ class DataPasses:
         return [delayed(tasks.decode_task, pure=True)(t.pieces, spec, transform, bt, dask_key_name=f"{name}-{t.index}")
                 for t in layout.tasks]
 
-    def read_all(self, transform: tasks.Transform) -> np.ndarray:
-        """Every row of the plan decoded and transformed, as one ``(n, d)`` float64 array, in file order.
+    def _direct_layout(self) -> Layout:
+        """Tasks of the direct method's one read; the memory estimate holds what it keeps.
 
-        Rows dropped by the missing rule are left out.  Runs on the run's
-        workers (``compute.workers`` tasks at a time); the memory estimate
-        counts the parts and the assembled array (2 x n x d x 8 bytes).
+        Held: every task's raw rows (the weight column too) and the assembled
+        preprocessed matrix, ``8 n (d + w) + 8 n d`` bytes; each task folds
+        its moments into an ``O(d)`` accumulator.
+        """
+        d, n = self.plan.n_features, self.plan.n_rows
+        width = d + (1 if self.plan.row_weight else 0)
+        return self.layout(8 * 6 * d, cached=8 * n * width + 8 * n * d)
+
+    def read_once(self, missing: str) -> tuple[list[np.ndarray], Moments]:
+        """One pass for the direct method: every task's raw rows in memory, and the moments of them all.
+
+        Each task returns its rows decoded but untransformed
+        (:func:`pcapipe.tasks.read_task`) and its moments, folded batch by
+        batch exactly as the moments pass folds them; the moments are merged
+        in the same fixed tree (:func:`pcapipe.moments.tree_merge`, the pairing
+        of :func:`tree_reduce`), so they are the moments pass's numbers
+        whatever ran the tasks.
 
         Raises
         ------
         InputError
-            The decoded rows do not fit the memory budget.
+            The rows do not fit the memory budget.
         """
-        layout = self._decode_layout(transform, 2)
-        parts = list(self.runner.compute(self._decode_graph(layout, transform), "decode", in_flight=layout.in_flight))
-        if not parts:
-            return np.zeros((0, self.plan.n_features))
-        out = np.empty((sum(p.shape[0] for p in parts), self.plan.n_features),
-                       order="F" if parts[0].flags.f_contiguous else "C")
+        layout = self._direct_layout()
+        self.direct_spec = spec = self._spec(layout)
+        bt = self.runner.blas_threads()
+        name = self._name("read", missing, layout.batch_rows)
+        objs = [delayed(tasks.read_task, pure=True)(t.pieces, spec, t.n_rows, missing, bt,
+                                                    dask_key_name=f"{name}-{t.index}")
+                for t in layout.tasks]
+        self._announce("decode into memory, with moments", len(objs), "tasks")
+        log.info("memory: %s", layout.estimate.describe())
+        out = self.runner.compute(objs, "decode", in_flight=layout.in_flight)
+        return [raw for raw, _ in out], tree_merge([m for _, m in out])
+
+    def rows_moments(self, parts: list[np.ndarray], missing: str, fill: np.ndarray) -> Moments:
+        """The moments of the rows :meth:`read_once` holds, with ``fill`` for missing values (no read)."""
+        return tree_merge([tasks.rows_moments(raw, self.direct_spec, missing, fill) for raw in parts])
+
+    def preprocessed(self, parts: list[np.ndarray], transform: tasks.Transform, n_used: int) -> np.ndarray:
+        """The held raw rows transformed in place and stacked: the ``(n_used, d)`` matrix of the direct method.
+
+        ``parts`` is emptied as it goes (each task's rows are freed once
+        copied); a single task's rows are transformed where they are, with no
+        copy.  ``n_used`` is the number of rows that enter the covariance
+        (``Moments.n``).
+        """
+        d = self.plan.n_features
+        if len(parts) == 1:
+            raw = parts.pop()
+            x = tasks.preprocess_into(raw, self.direct_spec, transform, np.empty((n_used, d), order="F"))
+            return x
+        out = np.empty((n_used, d), order="F")
         row = 0
-        for i, p in enumerate(parts):
-            out[row:row + p.shape[0]] = p
-            row += p.shape[0]
+        for i in range(len(parts)):
+            x = tasks.preprocess_into(parts[i], self.direct_spec, transform, out[row:])
+            if x.base is not out:
+                out[row:row + x.shape[0]] = x
+            row += x.shape[0]
             parts[i] = None  # free as we go
+        parts.clear()
+        if row != n_used:
+            raise RuntimeError(f"direct method: {row} rows kept where the moments counted {n_used}")
         return out
 
     def release(self) -> None:

@@ -20,7 +20,7 @@ from .monitor import MonitorSpec, monitor_columns
 from .reader import ReadSpec, iter_task, split_weights
 
 __all__ = ["Transform", "prepare_rows", "score_rows", "score_columns", "moments_task", "product_task", "scores_task", "decode_task",
-           "product_cached_task", "add", "limit_blas", "probe_task"]
+           "read_task", "rows_moments", "preprocess_into", "product_cached_task", "add", "limit_blas", "probe_task"]
 
 _blas_limit = None
 
@@ -98,6 +98,70 @@ def moments_task(pieces, spec: ReadSpec, full: bool, missing: str, fill=None, bl
         x, w = split_weights(xb, spec)
         acc.add(x, w)
     return acc.result()
+
+
+def read_task(pieces, spec: ReadSpec, n_rows: int, missing: str, blas_threads: int = 0) -> tuple[np.ndarray, Moments]:
+    """A task's raw rows in one Fortran-ordered array, and their moments, from one read.
+
+    The array holds the decoded values untransformed (and, with row weights,
+    the weight column last); the moments are exactly those of
+    :func:`moments_task` on the same task (the same batches folded in the
+    same order), so the direct method needs no separate moments pass.
+    """
+    limit_blas(blas_threads)
+    width = spec.n_features + (1 if spec.weight_column else 0)
+    out = np.empty((n_rows, width), order="F")
+    acc = Accumulator(spec.n_features, False, missing, None, weighted=bool(spec.weight_column))
+    row = 0
+    for xb in iter_task(pieces, spec):
+        out[row:row + xb.shape[0]] = xb
+        row += xb.shape[0]
+        acc.add(*split_weights(xb, spec))  # may overwrite xb: its values are already in out
+    if row != n_rows:
+        raise RuntimeError(f"read_task: {row} rows decoded where the footers promise {n_rows}")
+    return out, acc.result()
+
+
+def rows_moments(raw: np.ndarray, spec: ReadSpec, missing: str, fill: np.ndarray | None) -> Moments:
+    """Moments of a task's raw rows held in memory (from :func:`read_task`), ``spec.batch_rows`` at a time.
+
+    For the second moments of ``impute-mean`` (``fill`` known) without a
+    second read; each batch is copied, so ``raw`` is left as it is.
+    """
+    acc = Accumulator(spec.n_features, False, missing, fill, weighted=bool(spec.weight_column))
+    for i in range(0, raw.shape[0], spec.batch_rows):
+        acc.add(*split_weights(raw[i:i + spec.batch_rows].copy(order="F"), spec))
+    return acc.result()
+
+
+def preprocess_into(raw: np.ndarray, spec: ReadSpec, t: Transform, out: np.ndarray | None) -> np.ndarray:
+    """Transform a task's raw rows in place and return the rows that enter the covariance.
+
+    ``(x - shift) * inv_scale`` in place (the arithmetic the reader fuses into
+    its decode, so the values are the same bits), then the missing rule;
+    weighted rows become ``sqrt(w) x`` and rows of weight 0 are left out (as
+    :func:`decode_task`).  When rows are left out they are copied into the
+    leading rows of ``out`` (which must have room); otherwise the result is
+    a view of ``raw``.
+    """
+    x, w = split_weights(raw, spec)
+    x -= t.shift
+    if t.inv_scale is not None:
+        x *= t.inv_scale
+    keep = None
+    if t.missing != "none":
+        bad = ~np.isfinite(x)
+        if t.missing == "impute":
+            np.copyto(x, np.broadcast_to(t.fill, x.shape), where=bad)
+        elif bad.any():
+            keep = ~bad.any(axis=1)
+    if w is not None:
+        x *= np.sqrt(w)[:, None]
+        keep = w > 0 if keep is None else keep & (w > 0)
+    if keep is None or keep.all():
+        return x
+    k = int(keep.sum())
+    return np.compress(keep, x, axis=0, out=out[:k])
 
 
 def _rows(xb: np.ndarray, spec: ReadSpec, t: Transform) -> tuple[np.ndarray, np.ndarray | None]:

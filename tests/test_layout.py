@@ -154,15 +154,24 @@ def test_one_row_group_results_do_not_depend_on_the_scheduler(one_row_group, tmp
                                np.linalg.eigvalsh(np.cov(x, rowvar=False))[::-1][:3], rtol=1e-10)
 
 
-def test_read_all_returns_every_row_in_file_order(tmp_path, rng):
+def test_read_once_holds_every_row_in_file_order_with_the_moments_pass_numbers(tmp_path, rng):
     x = _spread(rng, 3000, 5)
     write_parquet(tmp_path / "d", x, files=7, row_group=128)
     cfg = pcapipe.config.load_config(make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run"))
     plan = make_plan(cfg)
     with Runner(ComputeConfig(scheduler="threads", workers=2, progress=False)) as runner:
         passes = DataPasses(plan, runner)
+        ref = passes.moments(False, "fail")
+        parts, m = passes.read_once("fail")
+        assert passes.count == 2  # one pass each
+        np.testing.assert_array_equal(np.concatenate(parts), x)  # raw, in file order
+        # the same batches folded in the same tree: the moments pass's numbers, bit for bit
+        for field in ("mean", "m2", "valid_mean"):
+            np.testing.assert_array_equal(getattr(m, field), getattr(ref, field))
+        assert (m.n, m.rows_seen) == (ref.n, ref.rows_seen) == (3000, 3000)
         t = Transform(x.mean(axis=0), None, "none")
-        got = passes.read_all(t)
+        got = passes.preprocessed(parts, t, m.n)
+    assert parts == []  # handed over, nothing else held
     np.testing.assert_allclose(got, x - x.mean(axis=0), rtol=0, atol=1e-12)
 
 

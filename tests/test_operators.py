@@ -12,7 +12,7 @@ from scipy.linalg import subspace_angles
 from scipy.sparse.linalg import eigsh
 
 import pcapipe
-from conftest import make_config, write_parquet
+from conftest import known_spectrum, make_config, write_parquet
 from pcapipe.eigen import SPECTRUM_LIMIT, eigensolve
 from pcapipe.methods import choose_method
 from pcapipe.operators import DataOperator, DenseOperator, MatrixFreeOperator
@@ -175,3 +175,65 @@ def test_fraction_is_the_smallest_count_reaching_it(rng, kind):
     res = eigensolve(ops[kind], 0.8, rng=np.random.default_rng(0), **SOLVER)
     assert res.values.size == k_ref
     np.testing.assert_allclose(res.values, w[:k_ref], rtol=1e-9)
+
+
+# -- direct: one read, the moments from the rows held ---------------------------------------------
+def _nan_rows(x, rng, share=0.05):
+    x = x.copy()
+    rows = rng.choice(x.shape[0], int(share * x.shape[0]), replace=False)
+    x[rows, rng.integers(0, x.shape[1], rows.size)] = np.nan
+    return x
+
+
+def _numpy_cov(x, missing, w=None):
+    """numpy's covariance (ddof=1, fweights-style weights) after the missing rule."""
+    bad = ~np.isfinite(x)
+    if missing == "impute-mean":  # the finite values' (weighted) mean fills the gaps
+        ww = np.ones(x.shape[0]) if w is None else w
+        fill = np.nansum(x * ww[:, None], axis=0) / ((~bad) * ww[:, None]).sum(axis=0)
+        x = np.where(bad, fill, x)
+    elif missing == "drop-rows":
+        ok = ~bad.any(axis=1)
+        x, w = x[ok], None if w is None else w[ok]
+    if w is None:
+        return np.cov(x, rowvar=False)
+    from pcapipe.weighted import reliability_factor  # numpy aweights -> our frequency convention (numpy docs, cov)
+
+    return np.cov(x, rowvar=False, aweights=w) / reliability_factor(w.sum(), (w * w).sum())
+
+
+@pytest.mark.parametrize(
+    "files, row_group, missing, weighted",
+    [
+        (1, None, "fail", False),          # one task: its rows transformed where they are
+        (4, 90, "fail", False),            # several tasks stacked
+        (4, 90, "drop-rows", False),       # rows with a gap left out of the stacked matrix
+        (3, 77, "impute-mean", False),     # the filled moments from the rows held, no second read
+        (3, 77, "drop-rows", True),        # row weights (0 included), rows dropped
+        (1, None, "impute-mean", True),    # one task, weighted, imputed
+    ],
+)
+def test_direct_reads_the_data_once_and_agrees_with_covariance_and_numpy(tmp_path, rng, files, row_group,
+                                                                           missing, weighted):
+    x = known_spectrum(700, 7, [9.0, 4.0, 2.0, 1.0, 0.5, 0.3, 0.1], rng, mean=rng.uniform(-50, 50, 7))
+    if missing != "fail":
+        x = _nan_rows(x, rng)
+    w = rng.integers(0, 4, x.shape[0]).astype(float) if weighted else None
+    write_parquet(tmp_path / "d", x, files=files, row_group=row_group, keep={"w": w} if weighted else None)
+    runs = {}
+    for method in ("direct", "covariance"):
+        runs[method] = pcapipe.run(make_config(
+            str(tmp_path / "d" / "*.parquet"), tmp_path / method, model={"components": 3, "method": method},
+            input={"missing": missing, **({"row_weight": "w"} if weighted else {})},
+            output={"scores": False, "report": False}))
+    direct, cov = runs["direct"], runs["covariance"]
+    # one pass over the data (the old code read twice: moments, then the rows; three times for impute-mean)
+    assert direct.manifest["passes_over_data"] == 1
+    assert cov.manifest["passes_over_data"] == (2 if missing == "impute-mean" else 1)
+    ref = np.linalg.eigvalsh(_numpy_cov(x, missing, w))[::-1]  # numpy
+    for res in (direct, cov):
+        np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:7], ref, rtol=1e-9)
+    np.testing.assert_allclose(direct.loadings, cov.loadings, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(direct.features["mean"], cov.features["mean"], rtol=1e-12)
+    np.testing.assert_allclose(direct.features["std"], cov.features["std"], rtol=1e-12)
+    assert direct.manifest["total_variance"] == pytest.approx(np.trace(_numpy_cov(x, missing, w)), rel=1e-12)

@@ -127,10 +127,11 @@ def test_bad_input_found_in_a_pass_leaves_nothing(tmp_path, rng):
     assert not (tmp_path / "run").exists() and not (tmp_path / "run.incomplete").exists()
 
 
-def test_covariance_run_resumes_after_the_moments_pass(tmp_path, rng):
+@pytest.mark.parametrize("method", ["covariance", "direct"])  # direct: the rows are read again
+def test_run_resumes_after_the_moments_pass(tmp_path, rng, method):
     x = known_spectrum(3000, 6, [5, 3, 2, 1, 0.5, 0.2], rng)
     write_parquet(tmp_path / "d", x, files=2, row_group=500)
-    cfg = make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run", model={"components": 3})
+    cfg = make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run", model={"components": 3, "method": method})
     ref = pcapipe.run(dict(cfg, output=dict(cfg["output"], directory=str(tmp_path / "ref"))))
     # Leave the state a kill after the moments pass leaves: run, then put the
     # checkpoint back as it was after that pass and drop the finished run.
@@ -145,8 +146,9 @@ def test_covariance_run_resumes_after_the_moments_pass(tmp_path, rng):
     from pcapipe.passes import DataPasses
 
     with Runner(p.cfg.compute) as runner:
-        m = _moments_pass(p, DataPasses(p.plan, runner, 1000), full=True)
-    ck.save("moments", moments=m, method="covariance", method_reason="test", method_estimates={}, passes=1)
+        m = _moments_pass(p, DataPasses(p.plan, runner), full=method == "covariance")
+    ck.save("moments", moments=m, method=method, method_reason="test", method_estimates={}, passes=1)
     res = pcapipe.run(cfg, resume=True)
     np.testing.assert_allclose(retained(res), retained(ref), rtol=1e-12)
+    assert res.manifest["method"] == method
     assert res.manifest["resumed"][0]["from_stage"] == "moments"
