@@ -8,7 +8,8 @@ of the outputs (see README, "Run directory"):
 * ``std_error = eigenvalue * sqrt(2 / n)``: the large-sample standard error of
   a sample eigenvalue, North, Bell, Cahalan & Moeng (1982), "Sampling errors
   in the estimation of empirical orthogonal functions", Mon. Wea. Rev. 110;
-* each loading vector is flipped so its entry of largest magnitude is positive.
+* each loading vector is flipped so its entry of largest magnitude is positive;
+  this and the preprocessing conventions live in :mod:`pcapipe.conventions`.
 """
 
 from __future__ import annotations
@@ -38,8 +39,8 @@ from .operators import DataOperator, DenseOperator, MatrixFreeOperator
 from .outputs import build_tables, component_names, manifest_for
 from .passes import DataPasses
 from .plan import Plan, make_plan
-from .tasks import Transform
-from .weighted import check_total_weight, feature_weight_array, input_scale, weight_features
+from .conventions import Transform, missing_rule, orient, total_variance, transform_for
+from .weighted import check_total_weight, feature_weight_array, weight_features
 from .writer import RunWriter, partial_dir_for
 
 __all__ = ["run", "prepare", "Prepared", "check_components"]
@@ -173,22 +174,11 @@ def _preprocessing(p: Prepared, m: Moments) -> tuple[Transform, np.ndarray, np.n
         scale_used = std
     else:
         scale_used = np.ones_like(std)
-    missing = "none"
-    if m.missing.any():
-        missing = "impute" if p.cfg.input.missing == "impute-mean" else "drop"
-    shift = mean if p.cfg.model.center else np.zeros_like(mean)
-    inv = input_scale((1.0 / scale_used) if p.cfg.model.scale else None, p.plan.feature_weights)
-    # an imputed entry is the feature's mean: 0 once centered, but not without centering
-    fill = (mean - shift) * (inv if inv is not None else 1.0)
-    return Transform(shift, inv, missing, fill), std, scale_used
-
-
-def _orient(vectors: np.ndarray) -> np.ndarray:
-    """Flip each column so that its entry of largest magnitude is positive."""
-    idx = np.argmax(np.abs(vectors), axis=0)
-    signs = np.sign(vectors[idx, np.arange(vectors.shape[1])])
-    signs[signs == 0] = 1.0
-    return vectors * signs
+    mc = p.cfg.model
+    transform = transform_for(mean, scale_used, center=mc.center, scale=mc.scale,
+                              feature_weights=p.plan.feature_weights,
+                              missing=missing_rule(p.cfg.input.missing, seen=bool(m.missing.any())))
+    return transform, std, scale_used
 
 
 def _solver_depth(d: int, block: int, memory: int) -> int:
@@ -295,7 +285,7 @@ class _Job:
             log.warning("%s", text)
         transform, std, scale_used = _preprocessing(p, m)
         res, trace, cache = self._solve(passes, choice, m, transform, scale_used)
-        vectors = _orient(res.vectors)
+        vectors = orient(res.vectors)
         t = time.perf_counter()
         limits = fit_limits(choice.method, p.cfg.monitor.confidence, m.total, trace, res.values, vectors,
                             matrix=getattr(self.op, "matrix", None), all_values=every_eigenvalue(res, trace),
@@ -363,7 +353,8 @@ class _Job:
         scale = scale_used if p.cfg.model.scale else None
         d = p.plan.n_features
         fw = feature_weight_array(p.plan.feature_weights)
-        trace = _trace(m, p.cfg.model.center, scale, fw)
+        trace = total_variance(m.variance(), m.mean, m.total, center=p.cfg.model.center, scale=scale,
+                               feature_weights=fw)
         cache = {"covariance": "not needed (one pass)",
                  "direct": "not needed (rows held in memory for the decomposition)"}.get(choice.method)
         solved = self.state.get("stage") == "solved"
@@ -439,17 +430,6 @@ def _solution_arrays(res: SolverResult) -> dict:
 
 
 _EXTRA = ("method", "extra_values", "extra_residuals", "extra_converged")
-
-
-def _trace(m: Moments, center: bool, scale, fw=None) -> float:
-    var = m.variance()
-    if not center:
-        var = var + m.mean**2 * (m.total / (m.total - 1))
-    if scale is not None:
-        var = var / scale**2
-    if fw is not None:
-        var = var * fw**2
-    return float(var.sum())
 
 
 def _maybe_cache(passes: DataPasses, runner, transform, n: int, d: int) -> str:

@@ -31,6 +31,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg.blas import dsyr, dsyrk
 
+from .conventions import about_zero
+
 __all__ = ["Moments", "Accumulator", "batch_moments", "merge", "merge_into", "tree_merge",
            "covariance_from"]
 
@@ -343,7 +345,7 @@ def covariance_from(m: Moments, center: bool, scale: np.ndarray | None) -> np.nd
     t = m.total
     c = m.symmetric() / (t - 1)
     if not center:
-        c = c + np.outer(m.mean, m.mean) * (t / (t - 1))
+        c = c + np.outer(m.mean, m.mean) * about_zero(t)
     if scale is not None:
         c = c / scale[:, None] / scale[None, :]
     return c

@@ -23,14 +23,10 @@ from .plan import resolve_inputs
 from .reader import ReadSpec, is_numeric
 from .scoring import out_schema, score_batch, score_tables, write_part
 from .monitor import MonitorSpec
-from .tasks import Transform
-from .weighted import input_scale
+from .conventions import Transform, missing_rule, transform_for
 from .writer import path_inside
 
 __all__ = ["Projector", "projector_for", "project_frame", "project_paths", "project_to_directory"]
-
-
-_MISSING = {"fail": "fail", "drop-rows": "drop", "impute-mean": "impute"}
 
 
 @dataclass(frozen=True)
@@ -54,13 +50,11 @@ def projector_for(result) -> Projector:
     columns = (vec,) if vec else tuple(result.loadings.index)
     batch = batch_rows_for(d)
     spec = ReadSpec(columns, vec, d, batch, tuple(cfg_in.get("keep", ())))
-    shift = f["mean"].to_numpy() if model.get("center", True) else np.zeros(d)
-    inv = 1.0 / f["scale_used"].to_numpy() if model.get("scale", False) else None
-    if "weight" in f and model.get("feature_weights"):  # the run's feature weights, as in its scores pass
-        inv = input_scale(inv, f["weight"].to_numpy())
-    # impute-mean puts the mean in place of a gap; after centring that is 0, without centring it is not
-    fill = (f["mean"].to_numpy() - shift) * (inv if inv is not None else 1.0)
-    transform = Transform(shift, inv, _MISSING[cfg_in.get("missing", "fail")], fill)
+    # the run's feature weights, as in its scores pass
+    fw = f["weight"].to_numpy() if "weight" in f and model.get("feature_weights") else None
+    transform = transform_for(f["mean"].to_numpy(), f["scale_used"].to_numpy(), center=model.get("center", True),
+                              scale=model.get("scale", False), feature_weights=fw,
+                              missing=missing_rule(cfg_in.get("missing", "fail")))
     monitor = None
     if m.get("limits"):
         from .alarms import monitor_spec

@@ -19,6 +19,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from .conventions import about_zero, analysed_factor
 from .errors import RunDirectoryError
 from .writer import FORMAT_VERSION
 
@@ -267,7 +268,10 @@ class Result:
         v = self.loadings.to_numpy()
         lam = self._retained()["eigenvalue"].to_numpy()
         # the analysed feature is x * factor: 1 / scale_used, times the feature weight (README "Weights")
-        factor = (f["weight"].to_numpy() if "weight" in f else 1.0) / f["scale_used"].to_numpy()
+        model = m["config"]["model"]
+        fw = f["weight"].to_numpy() if "weight" in f and model.get("feature_weights") else None
+        factor = analysed_factor(f["scale_used"].to_numpy(), model.get("scale", False), fw)
+        factor = np.ones(len(f)) if factor is None else factor
         sd = f["std"].to_numpy() * factor  # std of the analysed feature
         cov = v * lam
         var_s = lam.copy()
@@ -275,8 +279,8 @@ class Result:
             n = float((m.get("weights") or {}).get("sum") or m["rows"])
             mu = f["mean"].to_numpy() * factor
             proj = mu @ v
-            cov = cov - (n / (n - 1)) * np.outer(mu, proj)
-            var_s = var_s - (n / (n - 1)) * proj**2
+            cov = cov - about_zero(n) * np.outer(mu, proj)
+            var_s = var_s - about_zero(n) * proj**2
         with np.errstate(divide="ignore", invalid="ignore"):
             r = cov / np.outer(sd, np.sqrt(np.maximum(var_s, 0.0)))
         r[~np.isfinite(r)] = np.nan

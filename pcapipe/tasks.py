@@ -10,11 +10,10 @@ process, or on a remote dask worker.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 import pyarrow.parquet as pq
 
+from .conventions import Transform
 from .moments import Accumulator, Moments
 from .monitor import MonitorSpec, monitor_columns
 from .reader import ReadSpec, iter_task, split_weights
@@ -33,23 +32,6 @@ def limit_blas(threads: int) -> None:
     from threadpoolctl import threadpool_limits
 
     _blas_limit = threadpool_limits(limits=threads, user_api="blas")
-
-
-@dataclass(frozen=True)
-class Transform:
-    """Preprocessing applied to each row: ``(x - shift) * inv_scale``, then missing handling.
-
-    ``missing`` says what to do with a non-finite value: ``"impute"`` (put
-    ``fill``, the feature's mean after the transform: 0 when centered),
-    ``"drop"`` (the row is left out of sums and gets NaN scores), ``"fail"``
-    (an error, for projecting new rows), or ``"none"`` (the moments pass
-    proved there are none, so no check is spent).
-    """
-
-    shift: np.ndarray
-    inv_scale: np.ndarray | None
-    missing: str
-    fill: np.ndarray | None = None
 
 
 def prepare_rows(x: np.ndarray, t: Transform) -> tuple[np.ndarray, np.ndarray | None]:

@@ -39,7 +39,7 @@ from .errors import InputError
 from .moments import Moments, _gram
 
 __all__ = ["weighted_batch_moments", "weight_features", "reliability_factor", "check_total_weight",
-           "feature_weight_array", "input_scale", "weights_record", "weights_text"]
+           "feature_weight_array", "weights_record", "weights_text"]
 
 
 def _missing_rows(x, w, missing, fill):
@@ -133,14 +133,6 @@ def reliability_factor(total: float, total2: float) -> float:
 def feature_weight_array(weights) -> np.ndarray | None:
     """The plan's feature weights as an array (None when there are none)."""
     return None if weights is None else np.asarray(weights, dtype=np.float64)
-
-
-def input_scale(inv_scale: np.ndarray | None, feature_weights) -> np.ndarray | None:
-    """The per-feature factor applied after centring: ``1 / std`` (if scaling) times the feature weight."""
-    f = feature_weight_array(feature_weights)
-    if f is None:
-        return inv_scale
-    return f if inv_scale is None else inv_scale * f
 
 
 def check_total_weight(plan, m: Moments) -> None:

@@ -186,3 +186,40 @@ def test_cli_project_refuses_an_out_directory_overlapping_the_input(tmp_path, rn
     assert len(lines) == 1 and lines[0].startswith("error: --out:") and "overlaps the input" in lines[0]
     assert sorted(os.listdir(tmp_path / "in")) == listing
     assert all(open(p, "rb").read() == data for p, data in before.items())
+
+
+@pytest.mark.parametrize("center, missing", [
+    (True, "impute-mean"),   # gaps filled with the mean (0 after centring)
+    (False, "impute-mean"),  # uncentred: the fill is the scaled, weighted mean itself
+    (True, "drop-rows"),     # rows with a gap get NaN scores on every path
+])
+def test_run_scores_project_and_result_share_one_preprocessing(tmp_path, rng, center, missing):
+    """The run's scores pass, ``project`` to a directory and ``Result.project`` apply the same conventions.
+
+    Scaled, with feature weights and gaps: every convention of pcapipe.conventions is exercised.
+    """
+    x = _data(rng)
+    x[rng.choice(x.shape[0], 30, replace=False), rng.integers(0, 5, 30)] = np.nan
+    pd.DataFrame({"feature": [f"f{j}" for j in range(5)], "weight": [1.0, 0.5, 2.0, 0.7, 1.3]}).to_csv(
+        tmp_path / "fw.csv", index=False)
+    res, paths = _run(tmp_path, x, center=center, scale=True, feature_weights=str(tmp_path / "fw.csv"),
+                      input_={"missing": missing})
+    stored = _stored(res)
+    written = project_to_directory(res, paths, str(tmp_path / "projected"))
+    again = pd.concat([pq.read_table(p).to_pandas() for p in written], ignore_index=True)
+    frame = pd.concat([pq.read_table(p).to_pandas() for p in paths], ignore_index=True)
+    from_result = res.project(frame)
+    # the same transform and product on every path: identical scores (NaN where a row was dropped)
+    for other in (again, from_result):
+        np.testing.assert_array_equal(_pcs(other, res), _pcs(stored, res))
+        # the residual's sum of squares may round differently by batch (BLAS blocking): ulps
+        np.testing.assert_allclose(other[["t2", "spe"]], stored[["t2", "spe"]], rtol=1e-12, atol=0)
+    # and the documented preprocessing, written out here: ((x - shift) / std * weight) @ loadings
+    f = res.features
+    shift = f["mean"].to_numpy() if center else 0.0
+    filled = np.where(np.isnan(x), f["mean"].to_numpy(), x) if missing == "impute-mean" else x
+    want = ((filled - shift) / f["std"].to_numpy() * f["weight"].to_numpy()) @ res.loadings.to_numpy()
+    got = _pcs(stored, res)
+    np.testing.assert_array_equal(np.isnan(got), np.isnan(want))
+    ok = ~np.isnan(want)
+    np.testing.assert_allclose(got[ok], want[ok], rtol=1e-12, atol=1e-12 * np.abs(want[ok]).max())
