@@ -41,7 +41,7 @@ from .config import format_size
 from .errors import InputError
 
 __all__ = ["Piece", "Task", "MemoryEstimate", "Layout", "footer_costs", "layout_for", "FIXED_OVERHEAD",
-           "WHOLE_ROW_GROUP_BYTES"]
+           "WHOLE_ROW_GROUP_BYTES", "SLICE_BYTES", "SLICED_MIN_FEATURES"]
 
 # Peak RSS of a process that imported what `pcapipe run` imports (136 MiB measured,
 # numpy 2.4 / pyarrow 26 / dask 2026.8 / scipy 1.17) plus room for the allocators'
@@ -51,6 +51,14 @@ FIXED_OVERHEAD = 256 << 20
 # A row group up to this size (uncompressed, feature columns) may be read in one
 # call and sliced: ~2.5x faster than the streaming reader on wide tables.
 WHOLE_ROW_GROUP_BYTES = 64 << 20
+# Wide tables (at least this many scalar features): a row group too large to read in one call
+# is decoded whole-height, a slice of SLICE_BYTES (float64) of columns per pyarrow read, when the
+# decoded block takes at most a quarter of a task's memory.  Streaming it in batches costs
+# pyarrow a fixed price per column and batch: 10k x 10,000 float32, one thread, 2.0 s streamed
+# in 838-row batches vs 0.64 s by slices (DEVELOPERS.md, "Benchmarks").  Narrower tables keep
+# the streaming reader, whose batches bound their memory.
+SLICED_MIN_FEATURES = 1024
+SLICE_BYTES = 16 << 20
 # pyarrow / polars / DuckDB default data page size (at most): the streaming
 # reader holds about one page per column.
 _PAGE_BYTES = 1 << 20
@@ -130,6 +138,7 @@ class Layout:
     threads: int
     whole_bytes: int     # row groups up to this many bytes are read in one call
     estimate: MemoryEstimate
+    sliced_bytes: int = 0  # larger row groups decoded whole by column slices when at most this (float64)
 
 
 def footer_costs(md, columns) -> tuple[tuple[int, ...], tuple[int, ...]]:
@@ -199,15 +208,30 @@ def _group(pieces, target_rows: int, whole: int) -> tuple[Task, ...]:
     return tuple(tasks)
 
 
-def _task_bytes(task: Task, batch_rows: int, d: int, whole: int) -> tuple[int, int]:
-    """(reader buffers, batch bytes) of one task at its costliest piece."""
-    reader = 0
+def _is_sliced(p: Piece, d: int, whole: int, sliced: int) -> bool:
+    return p.nbytes > whole and 8 * p.n_rows * d <= sliced
+
+
+def _task_bytes(task: Task, batch_rows: int, d: int, whole: int, sliced: int = 0,
+                threads: int = 1) -> tuple[int, int]:
+    """(reader buffers, batch bytes) of one task at its costliest piece.
+
+    A piece decoded by column slices holds its whole float64 block (once: the
+    slices are written straight into it) and, per decoding thread, pyarrow's
+    buffers for one slice.
+    """
+    reader, batch = 0, 2 * 8 * min(batch_rows, task.n_rows) * d
     for p in task.pieces:
-        reader = max(reader, int(_WHOLE_FACTOR * p.nbytes) if p.nbytes <= whole else p.stream_bytes)
+        if _is_sliced(p, d, whole, sliced):
+            share = min(1.0, SLICE_BYTES / (8.0 * p.n_rows * d)) * max(1, threads)
+            reader = max(reader, int(_WHOLE_FACTOR * p.nbytes * min(1.0, share)))
+            batch = max(batch, 8 * p.n_rows * d)
+        else:
+            reader = max(reader, int(_WHOLE_FACTOR * p.nbytes) if p.nbytes <= whole else p.stream_bytes)
     if len(task.pieces) > 1:  # small pieces are gathered into one batch before decoding
         reader = max(reader, int(_WHOLE_FACTOR * sum(p.nbytes for p in task.pieces)
                                   * min(1.0, batch_rows / task.n_rows)))
-    return reader, 2 * 8 * min(batch_rows, task.n_rows) * d
+    return reader, batch
 
 
 def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: int, shared: bool,
@@ -247,7 +271,9 @@ def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: i
     if accumulator:  # each task adds a d x d partial and a merge: give it at least 8 d rows of work
         target = max(target, 8 * d)
     tasks = _group(pieces, target, whole)
-    costs = [_task_bytes(t, batch_rows, d, whole) for t in tasks] or [(0, 0)]
+    sliced = per_task_memory // 4 if d >= SLICED_MIN_FEATURES else 0
+    # a lone task in a shared process decodes its slices on up to every core
+    costs = [_task_bytes(t, batch_rows, d, whole, sliced, cores if shared else 1) for t in tasks] or [(0, 0)]
     worst = max(range(len(costs)), key=lambda i: sum(costs[i]))
     reader, batch = costs[worst]
     task = reader + batch + accumulator
@@ -265,4 +291,4 @@ def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: i
             f"compute.memory_limit allows; raise compute.memory_limit (or lower compute.workers), or rewrite "
             "the files with smaller row groups (e.g. 64k rows) or fewer columns")
     threads = max(1, cores // in_flight) if shared else 1
-    return Layout(tasks, batch_rows, in_flight, threads, whole, estimate)
+    return Layout(tasks, batch_rows, in_flight, threads, whole, estimate, sliced)

@@ -102,7 +102,8 @@ class DataPasses:
     def _spec(self, layout: Layout) -> ReadSpec:
         p = self.plan
         return ReadSpec(p.columns, p.vector_column, p.n_features, layout.batch_rows, p.keep,
-                        weight_column=p.row_weight, threads=layout.threads, whole_bytes=layout.whole_bytes)
+                        weight_column=p.row_weight, threads=layout.threads, whole_bytes=layout.whole_bytes,
+                        sliced_bytes=layout.sliced_bytes)
 
     def _name(self, kind: str, *args) -> str:
         return f"pcapipe-{kind}-{tokenize(self.plan.inputs_record(), self.spec, *args)}"

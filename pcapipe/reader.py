@@ -14,7 +14,11 @@ digits on every numpy, value-based casting or not).
 A dask task reads a :class:`~pcapipe.layout.Task` (:func:`iter_task`):
 small row groups are gathered into full batches before decoding, and a
 task given several threads decodes a streamed row group column-parallel
-(one pyarrow stream per share of the columns, filling one buffer).
+(one pyarrow stream per share of the columns, filling one buffer).  A row
+group of a wide table (``spec.sliced_bytes``) is decoded whole-height into
+one buffer, one slice of columns per pyarrow read: streaming it in batches
+costs pyarrow a fixed price per column and batch, which at 10,000 columns
+is most of the read (3x the sliced read, measured in DEVELOPERS.md).
 """
 
 from __future__ import annotations
@@ -31,7 +35,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .errors import InputError
-from .layout import WHOLE_ROW_GROUP_BYTES
+from .layout import SLICE_BYTES, WHOLE_ROW_GROUP_BYTES
 
 __all__ = ["ReadSpec", "iter_block", "iter_file", "iter_task", "batch_to_array", "is_numeric", "one_line",
            "split_weights"]
@@ -52,7 +56,10 @@ class ReadSpec:
     """What to decode: the feature columns, how wide, and how many rows at a time.
 
     ``threads`` > 1 decodes a streamed row group column-parallel; row groups
-    up to ``whole_bytes`` (uncompressed) are read in one call and sliced.
+    up to ``whole_bytes`` (uncompressed) are read in one call and sliced;
+    larger row groups of scalar columns whose decoded float64 block takes at
+    most ``sliced_bytes`` are decoded whole, a slice of columns per read
+    (:func:`iter_block`; 0: never).
 
     With a ``weight_column`` the decoded batch has ``n_features + 1`` columns,
     the last holding the row weights (checked finite and >= 0, never
@@ -67,6 +74,7 @@ class ReadSpec:
     weight_column: str = ""
     threads: int = 1
     whole_bytes: int = WHOLE_ROW_GROUP_BYTES
+    sliced_bytes: int = 0
 
     @property
     def read_columns(self) -> list[str]:
@@ -271,13 +279,51 @@ def _parallel_stream(path: str, row_group: int, spec: ReadSpec, shift, inv_scale
             yield out if rows[0] == spec.batch_rows else out[:rows[0]]
 
 
+def _sliced_block(path: str, row_group: int, n_rows: int, spec: ReadSpec, shift, inv_scale) -> np.ndarray:
+    """A row group of scalar columns decoded whole-height into one Fortran-ordered float64 buffer.
+
+    Columns are read ``SLICE_BYTES`` of float64 at a time (one pyarrow call
+    per slice; ``spec.threads`` readers take every k-th slice, each with its
+    own file handle), so pyarrow holds one slice at a time per thread.
+    """
+    out = np.empty((n_rows, spec.n_features), order="F")
+    step = max(1, SLICE_BYTES // (8 * max(1, n_rows)))
+    starts = list(range(0, len(spec.columns), step))
+    k = max(1, min(spec.threads, len(starts)))
+
+    def fill(i: int) -> None:
+        pf = _open(path)
+        for j0 in starts[i::k]:
+            table = pf.read_row_group(row_group, columns=list(spec.columns[j0:j0 + step]), use_threads=False)
+            if table.num_rows != n_rows:
+                raise InputError(f"{path} (row group {row_group}): holds {table.num_rows} rows, the footer "
+                                 f"said {n_rows}; the file changed after the run was planned, start it again")
+            for j, col in enumerate(table.columns, j0):
+                _column_into(out[:, j], col, None if shift is None else shift[j],
+                             None if inv_scale is None else inv_scale[j])
+
+    if k == 1:
+        fill(0)
+    else:
+        with ThreadPoolExecutor(k, thread_name_prefix="pcapipe-decode") as pool:
+            list(pool.map(fill, range(k)))
+    return out
+
+
+def _sliced(rg_meta, spec: ReadSpec, with_keep: bool) -> bool:
+    """Whether a (large) row group is decoded whole, by column slices (see :class:`ReadSpec`)."""
+    return (not (with_keep or spec.vector_column or spec.weight_column)
+            and 8 * rg_meta.num_rows * spec.n_features <= spec.sliced_bytes)
+
+
 def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=None,
                with_keep: bool = False, whole: bool = False) -> Iterator[tuple[np.ndarray, pa.RecordBatch | None]]:
     """Stream one row group as decoded batches.
 
     ``whole`` reads the row group in one call whatever its size (for a caller
     that keeps the whole decoded block anyway); otherwise only row groups up
-    to ``spec.whole_bytes`` are, and larger ones are streamed (column-parallel
+    to ``spec.whole_bytes`` are; larger ones are decoded whole by column
+    slices when ``spec.sliced_bytes`` allows, else streamed (column-parallel
     when ``spec.threads`` > 1 and there are no keep columns to carry).
 
     Yields ``(x, keep_batch)`` where ``keep_batch`` holds the keep columns
@@ -296,7 +342,11 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
         # Only vector and weight errors name a row, so other blocks skip the row-group offsets.
         named = spec.vector_column or spec.weight_column
         row = _row_group_starts(path, os.stat(path).st_mtime_ns)[row_group] if named else 0
-        if whole or pf.metadata.row_group(row_group).total_byte_size <= spec.whole_bytes:
+        meta = pf.metadata.row_group(row_group)
+        if not whole and meta.total_byte_size > spec.whole_bytes and _sliced(meta, spec, with_keep):
+            yield _sliced_block(path, row_group, meta.num_rows, spec, shift, inv_scale), None
+            return
+        if whole or meta.total_byte_size <= spec.whole_bytes:
             table = pf.read_row_group(row_group, columns=columns, use_threads=spec.threads > 1)
             batches = (table.slice(i, spec.batch_rows) for i in range(0, table.num_rows, spec.batch_rows))
         elif (spec.threads > 1 and not (with_keep or spec.vector_column or spec.weight_column)

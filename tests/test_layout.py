@@ -205,3 +205,61 @@ def test_in_flight_is_lowered_rather_than_exceeding_the_budget():
     assert layout.estimate.total <= layout.estimate.budget
     with pytest.raises(InputError, match="memory_limit"):  # separate worker processes cannot pool memory
         layout_for(pieces, 100, workers=2, memory_per_worker=64 << 20, cores=2, shared=False)
+
+
+# ------------------------------------------------------------------ wide row groups, by column slices
+
+def test_a_wide_row_group_decoded_by_column_slices_gives_the_streamed_values(tmp_path, rng, monkeypatch):
+    import pcapipe.reader as reader
+
+    x = rng.standard_normal((1500, 1100)).astype(np.float32)
+    (path,) = write_parquet(tmp_path, x)
+    columns = tuple(f"f{j}" for j in range(1100))
+    shift, inv = x.mean(axis=0, dtype=np.float64), 1 / x.std(axis=0, dtype=np.float64)
+    monkeypatch.setattr(reader, "SLICE_BYTES", 8 * 1500 * 100)  # 100 columns per read: 11 slices
+    streamed = ReadSpec(columns, "", 1100, 400, whole_bytes=0)
+    want = np.concatenate([b for b, _ in iter_block(path, 0, streamed, shift, inv)])
+    for threads in (1, 2):  # two readers take alternate slices of the one buffer
+        sliced = ReadSpec(columns, "", 1100, 400, whole_bytes=0, sliced_bytes=8 * 1500 * 1100, threads=threads)
+        blocks = [b for b, _ in iter_block(path, 0, sliced, shift, inv)]
+        assert len(blocks) == 1 and blocks[0].flags.f_contiguous  # the whole row group, one buffer
+        np.testing.assert_array_equal(blocks[0], want)
+    # a block larger than sliced_bytes is streamed in batches as before
+    small = ReadSpec(columns, "", 1100, 400, whole_bytes=0, sliced_bytes=8 * 1500 * 1100 - 1)
+    assert [b.shape[0] for b, _ in iter_block(path, 0, small)] == [400, 400, 400, 300]
+
+
+def test_only_wide_row_groups_that_fit_a_quarter_of_a_task_are_sliced():
+    # 50k x 2000 float32: a 400 MB row group, 800 MB decoded
+    pieces = [Piece(i, f"p{i}", 0, 50_000, 400 << 20, 300 << 20) for i in range(3)]
+    roomy = layout_for(pieces, 2000, workers=2, memory_per_worker=6 << 30, cores=2, shared=True)
+    assert roomy.sliced_bytes == (6 << 30) // 4
+    assert roomy.estimate.batch == 8 * 50_000 * 2000  # the whole decoded block counts, once
+    assert roomy.estimate.total <= roomy.estimate.budget
+    tight = layout_for(pieces, 2000, workers=2, memory_per_worker=2 << 30, cores=2, shared=True)
+    assert tight.estimate.batch == 2 * 8 * tight.batch_rows * 2000  # streamed: one batch at a time
+    narrow = layout_for([Piece(0, "a", 0, 400_000, 400 << 20, 3 << 20)], 256, workers=2,
+                        memory_per_worker=6 << 30, cores=2, shared=True)
+    assert narrow.sliced_bytes == 0  # narrow tables keep the streaming reader
+
+
+def test_a_wide_one_row_group_run_is_exact_and_scheduler_independent(tmp_path, monkeypatch):
+    import pcapipe.reader as reader
+
+    calls = []
+    real = reader._sliced_block
+    monkeypatch.setattr(reader, "_sliced_block", lambda *a: calls.append(a[1]) or real(*a))
+    rng = np.random.default_rng(11)
+    x = rng.standard_normal((2000, 1024)) * np.linspace(3, 0.5, 1024) + 7.0
+    write_parquet(tmp_path / "d", x)  # one 16 MiB row group: above whole_bytes at 256 MiB, decoded by slices
+    cfg = {"model": {"components": 3, "method": "covariance"}, "output": {"scores": False}}
+    ref = pcapipe.run(make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "ref", **cfg,
+                                  compute={"scheduler": "synchronous", "memory_limit": "256MiB"}))
+    assert calls == [0]  # the one pass read its one row group by slices (one reader thread)
+    # threads: the lone task reads alternate slices on two threads
+    res = pcapipe.run(make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run", **cfg,
+                                  compute={"scheduler": "threads", "workers": 2, "memory_limit": "256MiB"}))
+    assert calls == [0, 0]
+    np.testing.assert_array_equal(res.spectrum["eigenvalue"].to_numpy(), ref.spectrum["eigenvalue"].to_numpy())
+    np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:3],
+                               np.linalg.eigvalsh(np.cov(x, rowvar=False))[::-1][:3], rtol=1e-10)
