@@ -9,7 +9,11 @@ one :class:`~pcapipe.decomposition.SolverResult` whatever ran:
   eigenvalue), else ``syevr`` by index subset for the leading
   ``max(k, SPECTRUM_LIMIT)`` pairs (Dhillon, Parlett & Voemel 2006, "The
   design and implementation of the MRRR algorithm", ACM TOMS 32), through
-  :func:`scipy.linalg.eigh`;
+  :func:`scipy.linalg.eigh`.  For few components of a large matrix
+  (:func:`pcapipe.methods.dense_eigen_cost`: d = 10,000, k = 10) the
+  reduction to tridiagonal form alone costs minutes, so the block Krylov
+  solver runs on the matrix in memory instead (a product is ``2 d^2 b``
+  flops); should it not converge, LAPACK is run after all;
 * :class:`~pcapipe.operators.DataOperator` (direct method): with X~ the
   n x d preprocessed rows, ``C = X~^T X~ / (n - 1)``.  When n < d, the n x n
   Gram ``G = X~ X~^T`` has the same nonzero eigenvalues (times n - 1) and
@@ -26,11 +30,16 @@ flagged converged (exact to working precision); ``matvecs`` is 0.
 from __future__ import annotations
 
 import logging
+import warnings
+from dataclasses import replace
 
 import numpy as np
 import scipy.linalg as sl
 
+from .compute import cores
 from .decomposition import SolverResult, gap_to_others
+from .errors import NotConvergedWarning
+from .methods import dense_eigen_cost
 from .operators import DataOperator, DenseOperator
 from .solver import solve
 
@@ -119,6 +128,21 @@ def _direct(op: DataOperator, components, rng: np.random.Generator) -> SolverRes
     return _exact(values[:m], v[:, :m], res, k, how)
 
 
+def _dense_krylov(op: DenseOperator, k: int, tolerance: float, max_iterations: int, oversample: int,
+                  rng: np.random.Generator, depth: int) -> SolverResult | None:
+    """Block Krylov on the in-memory matrix; None (LAPACK instead) when a pair did not converge."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", NotConvergedWarning)
+        res = solve(op.matmat, op.n_features, k, tolerance=tolerance, max_iterations=max_iterations,
+                    oversample=oversample, rng=rng, depth=depth)
+    if not res.converged.all():
+        log.info("block Krylov on the %d x %d matrix did not converge in %d products; LAPACK instead",
+                 op.n_features, op.n_features, res.matvecs)
+        return None
+    return replace(res, method=f"block Krylov on the in-memory {op.n_features} x {op.n_features} matrix "
+                              f"({res.matvecs} products; LAPACK would reduce the whole matrix)")
+
+
 def eigensolve(op, components, *, tolerance: float, max_iterations: int, oversample: int,
                rng: np.random.Generator, depth: int = 8, state=None, callback=None) -> SolverResult:
     """Leading eigenpairs of the covariance operator ``op``, by the method its type calls for.
@@ -140,6 +164,12 @@ def eigensolve(op, components, *, tolerance: float, max_iterations: int, oversam
         Retained pairs largest first, and every other eigenvalue determined.
     """
     if isinstance(op, DenseOperator):
+        if isinstance(components, int) and op.n_features > SPECTRUM_LIMIT:
+            how, _ = dense_eigen_cost(op.n_features, components, components + oversample, cores())
+            if how == "krylov":
+                res = _dense_krylov(op, components, tolerance, max_iterations, oversample, rng, depth)
+                if res is not None:
+                    return res
         return _covariance(op, components)
     if isinstance(op, DataOperator):
         return _direct(op, components, rng)

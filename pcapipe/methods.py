@@ -29,7 +29,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-__all__ = ["MethodChoice", "choose_method", "RATES", "EXPECTED_APPLICATIONS", "CACHE_SHARE"]
+__all__ = ["MethodChoice", "choose_method", "dense_eigen_cost", "RATES", "EXPECTED_APPLICATIONS", "CACHE_SHARE"]
 
 # Measured by tests/perf/rates.py on 2026-12-02 04:19 UTC (best of 5, 2 cores, load average 12.5:
 # the machine was shared, so every rate is low by a similar factor; the choice depends on ratios).
@@ -49,6 +49,30 @@ CACHE_SHARE = 0.4
 _DEPTH = 8  # Krylov depth of the solver (engine._solver_depth), for the Rayleigh-Ritz cost
 
 
+# The block Krylov solver replaces LAPACK on an in-memory matrix only when its estimate is this
+# many times cheaper: the estimate assumes separated components (EXPECTED_APPLICATIONS), and a
+# clustered spectrum can take ~20x more applications (common practice, no source: a margin).
+_KRYLOV_MARGIN = 20.0
+
+
+def dense_eigen_cost(d: int, k: int, block: int, cores: int) -> tuple[str, float]:
+    """How the covariance method decomposes its in-memory d x d matrix, and the seconds it takes.
+
+    ``("lapack", s)``: ``scipy.linalg.eigh`` (by index subset when k <= d/4),
+    ``c d^3``; its reduction to tridiagonal form reads the whole matrix once
+    per column, which at d = 10,000 costs minutes.  ``("krylov", s)``: the
+    block Krylov solver on the matrix, ``EXPECTED_APPLICATIONS`` products of
+    ``2 d^2 b`` flops plus their Rayleigh-Ritz, chosen when at least
+    ``_KRYLOV_MARGIN`` times cheaper (few components of a large matrix).
+    """
+    eigh_c = RATES["eigh_full"] if k > d // 4 else RATES["eigh_subset"]
+    lapack = eigh_c * d**3
+    basis = _DEPTH * block
+    per = (2.0 * d * d * block + 4.0 * d * basis * basis) / (RATES["gemm"] * max(1, cores))
+    krylov = EXPECTED_APPLICATIONS * (per + RATES["eigh_full"] * basis**3)
+    return ("krylov", krylov) if _KRYLOV_MARGIN * krylov < lapack else ("lapack", lapack)
+
+
 @dataclass(frozen=True)
 class MethodChoice:
     """The method used, why, and the estimates behind the choice."""
@@ -66,8 +90,7 @@ def _estimates(n, d, k, block, workers, cores, memory_per_worker, can_cache, cli
     tasks_per_worker = max(1, cores // max(1, workers))
     cov_memory = 8.0 * d * d * (tasks_per_worker + 2)
     cov_fits = cov_memory <= 0.5 * memory_per_worker
-    eigh_c = RATES["eigh_full"] if k > d // 4 else RATES["eigh_subset"]
-    t_cov = read + n * d * d / flops(RATES["syrk"]) + eigh_c * d**3
+    t_cov = read + n * d * d / flops(RATES["syrk"]) + dense_eigen_cost(d, k, block, cores)[1]
     # direct: the blocks and the stacked matrix on the client
     direct_memory = 2 * decoded + 8.0 * min(n, d) ** 2
     direct_fits = direct_memory <= 0.5 * client_memory
