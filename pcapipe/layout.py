@@ -53,7 +53,7 @@ FIXED_OVERHEAD = 256 << 20
 WHOLE_ROW_GROUP_BYTES = 64 << 20
 # Wide tables (at least this many scalar features): a row group too large to read in one call
 # is decoded whole-height, a slice of SLICE_BYTES (float64) of columns per pyarrow read, when the
-# decoded block takes at most a quarter of a task's memory.  Streaming it in batches costs
+# decoded block takes at most half of a task's memory and the run still fits the budget.  Streaming it in batches costs
 # pyarrow a fixed price per column and batch: 10k x 10,000 float32, one thread, 2.0 s streamed
 # in 838-row batches vs 0.64 s by slices (DEVELOPERS.md, "Benchmarks").  Narrower tables keep
 # the streaming reader, whose batches bound their memory.
@@ -234,6 +234,27 @@ def _task_bytes(task: Task, batch_rows: int, d: int, whole: int, sliced: int = 0
     return reader, batch
 
 
+def _fits(estimate: MemoryEstimate, shared: bool, memory_per_worker: int) -> bool:
+    return estimate.fits() and (shared or estimate.task <= memory_per_worker)
+
+
+def _sized(tasks, d, batch_rows, whole, sliced, workers, cores, shared, budget, accumulator,
+           cached) -> tuple[MemoryEstimate, int]:
+    """The memory estimate of running ``tasks`` (as many at once as fit), and the costliest task's index."""
+    # a lone task in a shared process decodes its slices on up to every core
+    costs = [_task_bytes(t, batch_rows, d, whole, sliced, cores if shared else 1) for t in tasks] or [(0, 0)]
+    worst = max(range(len(costs)), key=lambda i: sum(costs[i]))
+    reader, batch = costs[worst]
+    task = reader + batch + accumulator
+    held = accumulator * (2 + math.ceil(math.log2(max(1, len(tasks)))))
+    in_flight = max(1, min(workers, len(tasks)))
+    if shared:
+        while in_flight > 1 and in_flight * task + held + cached > budget:
+            in_flight -= 1
+    return MemoryEstimate(reader, batch, accumulator, task, in_flight, held, cached,
+                          in_flight * task + held + cached, budget, FIXED_OVERHEAD), worst
+
+
 def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: int, shared: bool,
                accumulator: int = 0, cached: int = 0) -> Layout:
     """Group ``pieces`` into tasks and size batches and concurrency to the budget.
@@ -271,24 +292,22 @@ def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: i
     if accumulator:  # each task adds a d x d partial and a merge: give it at least 8 d rows of work
         target = max(target, 8 * d)
     tasks = _group(pieces, target, whole)
-    sliced = per_task_memory // 4 if d >= SLICED_MIN_FEATURES else 0
-    # a lone task in a shared process decodes its slices on up to every core
-    costs = [_task_bytes(t, batch_rows, d, whole, sliced, cores if shared else 1) for t in tasks] or [(0, 0)]
-    worst = max(range(len(costs)), key=lambda i: sum(costs[i]))
-    reader, batch = costs[worst]
-    task = reader + batch + accumulator
-    held = accumulator * (2 + math.ceil(math.log2(max(1, len(tasks)))))
-    in_flight = max(1, min(workers, len(tasks)))
-    if shared:
-        while in_flight > 1 and in_flight * task + held + cached > budget:
-            in_flight -= 1
-    estimate = MemoryEstimate(reader, batch, accumulator, task, in_flight, held, cached,
-                              in_flight * task + held + cached, budget, FIXED_OVERHEAD)
-    if not estimate.fits() or (not shared and task > memory_per_worker):
+    # wide row groups decoded whole by slices when that fits the budget, else streamed
+    sliced = per_task_memory // 2 if d >= SLICED_MIN_FEATURES else 0
+    if not any(_is_sliced(p, d, whole, sliced) for t in tasks for p in t.pieces):
+        sliced = 0
+    estimate, worst = _sized(tasks, d, batch_rows, whole, sliced, workers, cores, shared, budget, accumulator,
+                             cached)
+    if sliced and not _fits(estimate, shared, memory_per_worker):
+        sliced = 0
+        estimate, worst = _sized(tasks, d, batch_rows, whole, 0, workers, cores, shared, budget, accumulator,
+                                 cached)
+    if not _fits(estimate, shared, memory_per_worker):
         where = tasks[worst].pieces[0].path if tasks else "input"
         raise InputError(
-            f"{where}: reading it needs ~{format_size(task)} per task ({estimate.describe()}), more than "
-            f"compute.memory_limit allows; raise compute.memory_limit (or lower compute.workers), or rewrite "
-            "the files with smaller row groups (e.g. 64k rows) or fewer columns")
+            f"{where}: reading it needs ~{format_size(estimate.task)} per task ({estimate.describe()}), more "
+            f"than compute.memory_limit allows; raise compute.memory_limit (or lower compute.workers), or "
+            "rewrite the files with smaller row groups (e.g. 64k rows) or fewer columns")
+    in_flight = estimate.in_flight
     threads = max(1, cores // in_flight) if shared else 1
     return Layout(tasks, batch_rows, in_flight, threads, whole, estimate, sliced)

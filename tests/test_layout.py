@@ -229,15 +229,20 @@ def test_a_wide_row_group_decoded_by_column_slices_gives_the_streamed_values(tmp
     assert [b.shape[0] for b, _ in iter_block(path, 0, small)] == [400, 400, 400, 300]
 
 
-def test_only_wide_row_groups_that_fit_a_quarter_of_a_task_are_sliced():
-    # 50k x 2000 float32: a 400 MB row group, 800 MB decoded
-    pieces = [Piece(i, f"p{i}", 0, 50_000, 400 << 20, 300 << 20) for i in range(3)]
+def test_wide_row_groups_are_sliced_only_when_the_block_fits_the_budget():
+    # 50k x 2000 float32: a 400 MB row group, 800 MB (763 MiB) decoded
+    pieces = [Piece(i, f"p{i}", 0, 50_000, 400 << 20, 100 << 20) for i in range(3)]
     roomy = layout_for(pieces, 2000, workers=2, memory_per_worker=6 << 30, cores=2, shared=True)
-    assert roomy.sliced_bytes == (6 << 30) // 4
+    assert roomy.sliced_bytes == (6 << 30) // 2
     assert roomy.estimate.batch == 8 * 50_000 * 2000  # the whole decoded block counts, once
-    assert roomy.estimate.total <= roomy.estimate.budget
-    tight = layout_for(pieces, 2000, workers=2, memory_per_worker=2 << 30, cores=2, shared=True)
-    assert tight.estimate.batch == 2 * 8 * tight.batch_rows * 2000  # streamed: one batch at a time
+    assert roomy.estimate.in_flight == 2 and roomy.estimate.total <= roomy.estimate.budget
+    # more than half of a task's memory: streamed, one batch at a time
+    tight = layout_for(pieces, 2000, workers=2, memory_per_worker=1 << 30, cores=2, shared=True)
+    assert tight.sliced_bytes == 0 and tight.estimate.batch == 2 * 8 * tight.batch_rows * 2000
+    # the block would fit half a task, but not next to 700 MiB of cached rows: streamed instead of refused
+    crowded = layout_for(pieces, 2000, workers=1, memory_per_worker=1600 << 20, cores=2, shared=True,
+                         accumulator=8 * 2000 * 2000, cached=700 << 20)
+    assert crowded.sliced_bytes == 0 and crowded.estimate.fits()
     narrow = layout_for([Piece(0, "a", 0, 400_000, 400 << 20, 3 << 20)], 256, workers=2,
                         memory_per_worker=6 << 30, cores=2, shared=True)
     assert narrow.sliced_bytes == 0  # narrow tables keep the streaming reader
