@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._version import __version__
-from .alarms import FirstBlock, count_alarms, every_eigenvalue, fit_limits, monitor_spec
+from .alarms import FirstBlock, every_eigenvalue, fit_limits, monitor_spec
 from .compute import Runner, cores
 from .config import Config, load_config, resolve_path
 from .checkpoint import Checkpoint, job_identity, merge_overrides, saved_overrides
@@ -39,6 +39,7 @@ from .operators import DataOperator, DenseOperator, MatrixFreeOperator
 from .outputs import build_tables, component_names, manifest_for
 from .passes import DataPasses
 from .plan import Plan, make_plan
+from .scoring import alarm_totals
 from .conventions import Transform, missing_rule, orient, total_variance, transform_for
 from .weighted import check_total_weight, feature_weight_array, weight_features
 from .writer import RunWriter, partial_dir_for
@@ -294,9 +295,9 @@ class _Job:
         t = time.perf_counter()
         score_rows, alarms = None, None
         if p.cfg.output.scores:
-            score_rows = passes.scores(transform, vectors, component_names(vectors.shape[1]),
-                                       p.writer.path("scores"), monitor_spec(limits, res.values, training=True))
-            alarms = count_alarms(p.writer.path("scores"))
+            written = passes.scores(transform, vectors, component_names(vectors.shape[1]),
+                                    p.writer.path("scores"), monitor_spec(limits, res.values, training=True))
+            score_rows, alarms = [w.rows for w in written], alarm_totals(written)
         self.timings["scores_seconds"] = time.perf_counter() - t
         self.timings["total_seconds"] = sum(v for k, v in self.timings.items() if k != "total_seconds")
         for name, table in build_tables(p.plan, m, res, vectors, std, scale_used, trace).items():

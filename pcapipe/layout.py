@@ -40,7 +40,7 @@ from dataclasses import dataclass
 from .config import format_size
 from .errors import InputError
 
-__all__ = ["Piece", "Task", "MemoryEstimate", "Layout", "footer_costs", "layout_for", "FIXED_OVERHEAD",
+__all__ = ["Piece", "Task", "MemoryEstimate", "Layout", "footer_costs", "leaf_columns", "layout_for", "FIXED_OVERHEAD",
            "WHOLE_ROW_GROUP_BYTES", "SLICE_BYTES", "SLICED_MIN_FEATURES"]
 
 # Peak RSS of a process that imported what `pcapipe run` imports (136 MiB measured,
@@ -141,20 +141,31 @@ class Layout:
     sliced_bytes: int = 0  # larger row groups decoded whole by column slices when at most this (float64)
 
 
-def footer_costs(md, columns) -> tuple[tuple[int, ...], tuple[int, ...]]:
-    """Per row group: uncompressed bytes of ``columns`` and the streaming reader's buffers.
+def leaf_columns(md, columns) -> tuple[tuple[int, bool], ...]:
+    """``(leaf index, nested)`` of the Parquet leaf columns under the top-level ``columns``.
 
-    ``md`` is a ``pyarrow.parquet.FileMetaData``; ``columns`` the top-level
-    column names read (a vector column counts its leaf column).
+    Depends only on the file's schema, so the planner reuses it for files
+    with an equal ``md.schema``.
     """
     wanted = set(columns)
     paths = [md.schema.column(i).path.split(".") for i in range(md.num_columns)]
-    leaves = [i for i in range(md.num_columns) if paths[i][0] in wanted]
+    return tuple((i, len(paths[i]) > 1) for i in range(md.num_columns) if paths[i][0] in wanted)
+
+
+def footer_costs(md, columns, leaves=None) -> tuple[tuple[int, ...], tuple[int, ...]]:
+    """Per row group: uncompressed bytes of ``columns`` and the streaming reader's buffers.
+
+    ``md`` is a ``pyarrow.parquet.FileMetaData``; ``columns`` the top-level
+    column names read (a vector column counts its leaf column); ``leaves``
+    their :func:`leaf_columns`, when already known.
+    """
+    if leaves is None:
+        leaves = leaf_columns(md, columns)
     nbytes, stream = [], []
     for r in range(md.num_row_groups):
         rg = md.row_group(r)
         total = buffers = 0
-        for i in leaves:
+        for i, nested in leaves:
             c = rg.column(i)
             size = c.total_uncompressed_size
             dictionary = 0
@@ -164,7 +175,7 @@ def footer_costs(md, columns) -> tuple[tuple[int, ...], tuple[int, ...]]:
             # A list column's pages are not bounded by 1 MiB (DuckDB writes a 1.5 GB chunk of
             # 4096-float vectors in very few: a run streaming it peaked at 2.3 GB), so its whole
             # chunk counts.
-            page = size if len(paths[i]) > 1 else min(size, _PAGE_BYTES)
+            page = size if nested else min(size, _PAGE_BYTES)
             buffers += int(1.25 * (page + dictionary)) + min(size, _READ_BUFFER)
         nbytes.append(total)
         stream.append(buffers)

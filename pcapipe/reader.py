@@ -37,7 +37,7 @@ import pyarrow.parquet as pq
 from .errors import InputError
 from .layout import SLICE_BYTES, WHOLE_ROW_GROUP_BYTES
 
-__all__ = ["ReadSpec", "iter_block", "iter_file", "iter_task", "batch_to_array", "is_numeric", "one_line",
+__all__ = ["ReadSpec", "iter_block", "iter_file", "iter_task", "open_file", "batch_to_array", "is_numeric", "one_line",
            "split_weights"]
 
 
@@ -225,7 +225,8 @@ def _row_group_starts(path: str, mtime_ns: int) -> tuple[int, ...]:
     return tuple(int(v) for v in np.cumsum([0] + sizes[:-1]))
 
 
-def _open(path: str) -> pq.ParquetFile:
+def open_file(path: str) -> pq.ParquetFile:
+    """Open a Parquet file for streaming; an unreadable one raises :class:`InputError` naming it."""
     try:
         # pre_buffer would hold the whole row group; a small read buffer streams the pages
         return pq.ParquetFile(path, pre_buffer=False, buffer_size=1 << 16)
@@ -257,7 +258,7 @@ def _parallel_stream(path: str, row_group: int, spec: ReadSpec, shift, inv_scale
     """
     k = spec.threads
     shares = [list(range(i, len(spec.columns), k)) for i in range(k)]
-    streams = [_open(path).iter_batches(batch_size=spec.batch_rows, row_groups=[row_group],
+    streams = [open_file(path).iter_batches(batch_size=spec.batch_rows, row_groups=[row_group],
                                         columns=[spec.columns[j] for j in share], use_threads=False)
                for share in shares]
 
@@ -292,7 +293,7 @@ def _sliced_block(path: str, row_group: int, n_rows: int, spec: ReadSpec, shift,
     k = max(1, min(spec.threads, len(starts)))
 
     def fill(i: int) -> None:
-        pf = _open(path)
+        pf = open_file(path)
         for j0 in starts[i::k]:
             table = pf.read_row_group(row_group, columns=list(spec.columns[j0:j0 + step]), use_threads=False)
             if table.num_rows != n_rows:
@@ -317,7 +318,8 @@ def _sliced(rg_meta, spec: ReadSpec, with_keep: bool) -> bool:
 
 
 def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=None,
-               with_keep: bool = False, whole: bool = False) -> Iterator[tuple[np.ndarray, pa.RecordBatch | None]]:
+               with_keep: bool = False, whole: bool = False,
+               pf: pq.ParquetFile | None = None) -> Iterator[tuple[np.ndarray, pa.RecordBatch | None]]:
     """Stream one row group as decoded batches.
 
     ``whole`` reads the row group in one call whatever its size (for a caller
@@ -327,7 +329,8 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
     when ``spec.threads`` > 1 and there are no keep columns to carry).
 
     Yields ``(x, keep_batch)`` where ``keep_batch`` holds the keep columns
-    when ``with_keep`` is true (else None).
+    when ``with_keep`` is true (else None).  ``pf`` is the file already
+    opened by :func:`open_file` (a small file's cost is mostly its opening).
 
     Raises
     ------
@@ -335,7 +338,7 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
         The file cannot be opened or decoded (truncated, corrupt pages), lost
         a column since it was planned, or holds a bad vector.
     """
-    pf = _open(path)
+    pf = pf or open_file(path)
     columns = list(dict.fromkeys([*spec.read_columns, *(spec.keep if with_keep else ())]))
     _check_columns(path, pf, columns)
     try:
@@ -367,19 +370,22 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
 
 
 def iter_file(path: str, row_groups, spec: ReadSpec, shift=None, inv_scale=None,
-              with_keep: bool = False):
-    """Stream the given row groups of one file in order (row order kept)."""
+              with_keep: bool = False, pf: pq.ParquetFile | None = None):
+    """Stream the given row groups of one file in order (row order kept), opening it once."""
+    pf = pf or open_file(path)
     for rg in row_groups:
-        yield from iter_block(path, rg, spec, shift, inv_scale, with_keep)
+        yield from iter_block(path, rg, spec, shift, inv_scale, with_keep, pf=pf)
 
 
 def _small_table(piece, spec: ReadSpec) -> pa.Table:
-    pf = _open(piece.path)
-    _check_columns(piece.path, pf, spec.read_columns)
+    pf = open_file(piece.path)
     try:
-        return pf.read_row_group(piece.row_group, columns=spec.read_columns, use_threads=False)
+        table = pf.read_row_group(piece.row_group, columns=spec.read_columns, use_threads=False)
     except (OSError, pa.ArrowException) as e:
         raise _decode_error(piece.path, piece.row_group, e) from e
+    if table.num_columns != len(spec.read_columns):  # pyarrow leaves out a name it does not find
+        _check_columns(piece.path, pf, spec.read_columns)
+    return table
 
 
 def _gathered(tables: list, spec: ReadSpec, shift, inv_scale) -> Iterator[np.ndarray]:

@@ -203,8 +203,9 @@ def add(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def scores_task(parts, spec: ReadSpec, t: Transform, loadings: np.ndarray, names, blas_threads: int = 0,
-                monitor: MonitorSpec | None = None) -> list[int]:
-    """Write the scores of several input files, one part each; returns the rows written per part.
+                monitor: MonitorSpec | None = None) -> list:
+    """Write the scores of several input files, one part each; returns each part's
+    :class:`~pcapipe.scoring.PartCounts` (rows written, alarms).
 
     ``parts`` is a sequence of ``(input path, row groups, part path)``; each
     part is written by :func:`pcapipe.scoring.write_part` (the writer

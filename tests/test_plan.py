@@ -270,3 +270,45 @@ def test_unreadable_file(tmp_path, content):
     with pytest.raises(InputError, match=r"bad\.parquet: not a readable Parquet file .*re-copy it") as info:
         _plan(str(path), tmp_path)
     assert info.value.__cause__ is not None
+
+
+# ------------------------------------------------------------ footers read by the planning loop
+
+@pytest.mark.parametrize("content", [
+    b"",                                             # empty
+    b"PAR1 not really",                              # no footer at all
+    b"PAR1" + b"\x00" * 40 + (40).to_bytes(4, "little") + b"PAR1",  # a footer of zeros: not thrift
+])
+def test_unreadable_later_file(tmp_path, content):
+    # the planning loop reads every footer after the first itself; a bad one is still named
+    _write(str(tmp_path / "d" / "a.parquet"), x=np.arange(3.0))
+    (tmp_path / "d" / "b.parquet").write_bytes(content)
+    with pytest.raises(InputError, match=r"b\.parquet: not a readable Parquet file .*re-copy it"):
+        _plan(str(tmp_path / "d"), tmp_path)
+
+
+def test_same_parquet_schema_other_arrow_type_is_checked(tmp_path):
+    # int64 and duration are the same Parquet column (INT64); only the stored Arrow schema
+    # tells them apart, so a file is compared by its Parquet schema *and* that metadata
+    _write(str(tmp_path / "d" / "a.parquet"), x=pa.array([1, 2, 3], pa.int64()), y=np.arange(3.0))
+    _write(str(tmp_path / "d" / "b.parquet"), x=pa.array([1, 2, 3], pa.duration("s")), y=np.arange(3.0))
+    assert pq.ParquetFile(tmp_path / "d" / "a.parquet").metadata.schema.equals(
+        pq.ParquetFile(tmp_path / "d" / "b.parquet").metadata.schema)
+    with pytest.raises(InputError, match=r"b\.parquet: column 'x' has type duration\[s\], but .*int64"):
+        _plan(str(tmp_path / "d"), tmp_path)
+
+
+@pytest.mark.parametrize("width", [2, 1500])  # a footer of a few hundred bytes; one over 64 KiB
+def test_footer_fingerprint_and_costs_from_one_read(tmp_path, width):
+    from pcapipe.layout import footer_costs
+    from pcapipe.plan import footer_fingerprint
+
+    for name in ("a", "b"):
+        _write(str(tmp_path / "d" / f"{name}.parquet"), **{f"c{j}": np.arange(4.0) + j for j in range(width)})
+    b = str(tmp_path / "d" / "b.parquet")
+    md = pq.read_metadata(b)
+    assert (md.serialized_size > 64 << 10) == (width > 2)
+    info = _plan(str(tmp_path / "d"), tmp_path).files[1]
+    assert info.footer == footer_fingerprint(b)  # the hash of the footer's bytes as stored
+    assert (info.row_group_bytes, info.row_group_stream) == footer_costs(md, [f"c{j}" for j in range(width)])
+    assert (info.size, info.mtime_ns, info.n_rows) == (os.stat(b).st_size, os.stat(b).st_mtime_ns, 4)

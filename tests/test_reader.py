@@ -174,6 +174,21 @@ def test_file_replaced_after_planning(tmp_path, x):
         list(iter_block(path, 0, _spec(5)))
 
 
+def test_small_file_replaced_after_planning(tmp_path):
+    # small row groups are gathered into one batch; a lost column is still named
+    from pcapipe.layout import Piece
+    from pcapipe.reader import iter_task
+
+    paths = [str(tmp_path / f"p{i}.parquet") for i in range(2)]
+    for p in paths:
+        pq.write_table(pa.table({"f0": [1.0, 2.0], "f1": [3.0, 4.0]}), p)
+    pieces = [Piece(i, p, 0, 2, 32, 64) for i, p in enumerate(paths)]
+    assert np.array_equal(np.vstack(list(iter_task(pieces, _spec(2)))), [[1, 3], [2, 4], [1, 3], [2, 4]])
+    pq.write_table(pa.table({"f0": [1.0, 2.0]}), paths[1])
+    with pytest.raises(InputError, match=r"p1\.parquet: column 'f1' is gone; the file changed"):
+        list(iter_task(pieces, _spec(2)))
+
+
 def test_file_not_parquet(tmp_path):
     path = str(tmp_path / "junk.parquet")
     with open(path, "wb") as f:

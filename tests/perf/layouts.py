@@ -1,6 +1,6 @@
 """pcapipe on the Parquet layouts users have, each against that layout's own floor.
 
-    python tests/perf/layouts.py [--quick] [--only tall,wide,emb,small] [--scratch DIR] [--code DIR]
+    python tests/perf/layouts.py [--quick] [--only tall,wide,emb,small] [--scratch DIR] [--code DIR] [--scores]
 
 Shapes (``--quick``: 1/10 of the rows, 1/10 of the small files):
 
@@ -24,7 +24,8 @@ RSS of the child):
   at all, with no memory limit;
 * ``pcapipe covariance`` at ``memory_limit = "auto"``;
 * ``pcapipe covariance`` at ``memory_limit = "256MiB"`` x 2 workers (the
-  memory target: peak <= 512 MiB + layout.FIXED_OVERHEAD).
+  memory target: peak <= 512 MiB + layout.FIXED_OVERHEAD);
+* with ``--scores``, for the small files: ``auto`` writing scores (one part per input file).
 
 Prints a markdown table with the ratio to the floor beside each pcapipe row
 and the machine's other load during each child (the ``others`` column: cores
@@ -155,7 +156,7 @@ def _generate_small(root: str, files: int, log) -> None:
         json.dump({"files": files}, f)
 
 
-def _config(path: str, data: str, out: str, vector: bool, memory: str, workers: int) -> None:
+def _config(path: str, data: str, out: str, vector: bool, memory: str, workers: int, scores: bool = False) -> None:
     sys.path.insert(0, os.path.dirname(HERE))
     from conftest import write_toml
 
@@ -163,7 +164,7 @@ def _config(path: str, data: str, out: str, vector: bool, memory: str, workers: 
         "input": {"paths": [data], **({"vector_column": "emb"} if vector else {})},
         "model": {"components": 10, "method": "covariance"},
         "compute": {"scheduler": "threads", "workers": workers, "memory_limit": memory, "progress": False},
-        "output": {"directory": out, "scores": False, "report": False, "overwrite": True},
+        "output": {"directory": out, "scores": scores, "report": False, "overwrite": True},
     })
 
 
@@ -180,17 +181,20 @@ def _run(label: str, argv, env, logs: str, timeout: float, rows: list, case: str
     return row
 
 
-def _bench_layout(case, layout, paths_glob, d, vector, env, scratch, rows, timeout):
+def _bench_layout(case, layout, paths_glob, d, vector, env, scratch, rows, timeout, scores=False):
     logs = os.path.join(scratch, "logs")
     os.makedirs(logs, exist_ok=True)
     files = sorted(__import__("glob").glob(paths_glob))
     floor = _run("floor: read+decode+Gram", [sys.executable, "-c", _FLOOR, d, int(vector), *files], env, logs,
                  timeout, rows, case, layout)
-    for memory, workers in (("auto", 0), ("256MiB", 2)):
-        cfg = os.path.join(scratch, "configs", f"{case}-{layout}-{memory}.toml")
+    runs = [("auto", 0, False), ("256MiB", 2, False)] + ([("auto", 0, True)] if scores else [])
+    for memory, workers, with_scores in runs:
+        tag = f"{memory}{'-scores' if with_scores else ''}"
+        cfg = os.path.join(scratch, "configs", f"{case}-{layout}-{tag}.toml")
         os.makedirs(os.path.dirname(cfg), exist_ok=True)
-        _config(cfg, paths_glob, os.path.join(scratch, "runs", f"{case}-{layout}-{memory}"), vector, memory, workers)
-        row = _run(f"pcapipe cov {memory}" + (" x 2" if workers else ""),
+        _config(cfg, paths_glob, os.path.join(scratch, "runs", f"{case}-{layout}-{tag}"), vector, memory, workers,
+                with_scores)
+        row = _run(f"pcapipe cov {memory}" + (" x 2" if workers else "") + (" + scores" if with_scores else ""),
                    [sys.executable, "-m", "pcapipe", "run", "-q", cfg], env, logs, timeout, rows, case, layout)
         ok = floor["status"] == "ok" and row["status"] == "ok"
         row["ratio"] = row["wall"] / floor["wall"] if ok else float("nan")
@@ -220,6 +224,7 @@ def main(argv=None) -> int:
     ap.add_argument("--code", default=REPO, help="the pcapipe checkout to measure")
     ap.add_argument("--timeout", type=float, default=1800)
     ap.add_argument("--generate-only", action="store_true", help="write the data, run nothing")
+    ap.add_argument("--scores", action="store_true", help="also run `auto` with scores (small files only)")
     args = ap.parse_args(argv)
     scale = 10 if args.quick else 1
     root = os.path.join(args.scratch, "quick" if args.quick else "full")
@@ -234,7 +239,7 @@ def main(argv=None) -> int:
                 continue
             for layout in ("files-many", "files-ten"):
                 _bench_layout(case, layout, os.path.join(root, "small", layout, "*.parquet"), 64, False, env,
-                              args.scratch, rows, args.timeout)
+                              args.scratch, rows, args.timeout, scores=args.scores)
             continue
         n, d, dtype, vector = SHAPES[case]
         _generate(root, case, n // scale, d, dtype, vector, print)
