@@ -27,8 +27,9 @@ last term is the 64 KiB read buffer; pages of at most
 whole costs about ``4.5x`` its uncompressed bytes (the Arrow table, the pages
 and the allocator's slack: 1M x 256 float64 in 32k-row groups, two tasks,
 peak 764 MB); the decoded batch costs
-twice its float64 bytes (the Arrow batch and the float64 buffer); the
-covariance accumulator ``8 d^2``.  The run's peak is then at most
+twice its float64 bytes (the Arrow batch and the float64 buffer; with row
+weights one more column, plus the fold's copy of the rows of positive weight);
+the covariance accumulator ``8 d^2``.  The run's peak is then at most
 ``in_flight * task + held accumulators + cached blocks + FIXED_OVERHEAD``.
 """
 
@@ -224,14 +225,16 @@ def _is_sliced(p: Piece, d: int, whole: int, sliced: int) -> bool:
 
 
 def _task_bytes(task: Task, batch_rows: int, d: int, whole: int, sliced: int = 0,
-                threads: int = 1) -> tuple[int, int]:
+                threads: int = 1, weighted: bool = False) -> tuple[int, int]:
     """(reader buffers, batch bytes) of one task at its costliest piece.
 
     A piece decoded by column slices holds its whole float64 block (once: the
     slices are written straight into it) and, per decoding thread, pyarrow's
-    buffers for one slice.
+    buffers for one slice.  Row weights widen the batch by one column, and
+    folding a weighted batch copies its rows of positive weight once.
     """
-    reader, batch = 0, 2 * 8 * min(batch_rows, task.n_rows) * d
+    rows = min(batch_rows, task.n_rows)
+    reader, batch = 0, 2 * 8 * rows * (d + 1) + 8 * rows * d if weighted else 2 * 8 * rows * d
     for p in task.pieces:
         if _is_sliced(p, d, whole, sliced):
             share = min(1.0, SLICE_BYTES / (8.0 * p.n_rows * d)) * max(1, threads)
@@ -250,10 +253,11 @@ def _fits(estimate: MemoryEstimate, shared: bool, memory_per_worker: int) -> boo
 
 
 def _sized(tasks, d, batch_rows, whole, sliced, workers, cores, shared, budget, accumulator,
-           cached) -> tuple[MemoryEstimate, int]:
+           cached, weighted=False) -> tuple[MemoryEstimate, int]:
     """The memory estimate of running ``tasks`` (as many at once as fit), and the costliest task's index."""
     # a lone task in a shared process decodes its slices on up to every core
-    costs = [_task_bytes(t, batch_rows, d, whole, sliced, cores if shared else 1) for t in tasks] or [(0, 0)]
+    costs = [_task_bytes(t, batch_rows, d, whole, sliced, cores if shared else 1, weighted)
+             for t in tasks] or [(0, 0)]
     worst = max(range(len(costs)), key=lambda i: sum(costs[i]))
     reader, batch = costs[worst]
     task = reader + batch + accumulator
@@ -267,7 +271,7 @@ def _sized(tasks, d, batch_rows, whole, sliced, workers, cores, shared, budget, 
 
 
 def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: int, shared: bool,
-               accumulator: int = 0, cached: int = 0) -> Layout:
+               accumulator: int = 0, cached: int = 0, weighted: bool = False) -> Layout:
     """Group ``pieces`` into tasks and size batches and concurrency to the budget.
 
     Parameters
@@ -287,6 +291,9 @@ def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: i
         Bytes of one task's partial result (``8 d^2`` for the covariance method).
     cached : int
         Bytes of decoded blocks kept in memory between passes.
+    weighted : bool
+        Rows carry weights (``input.row_weight``): a wider batch and its copy;
+        the reader streams such row groups rather than decoding them by slices.
 
     Raises
     ------
@@ -304,15 +311,15 @@ def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: i
         target = max(target, 8 * d)
     tasks = _group(pieces, target, whole)
     # wide row groups decoded whole by slices when that fits the budget, else streamed
-    sliced = per_task_memory // 2 if d >= SLICED_MIN_FEATURES else 0
+    sliced = per_task_memory // 2 if d >= SLICED_MIN_FEATURES and not weighted else 0
     if not any(_is_sliced(p, d, whole, sliced) for t in tasks for p in t.pieces):
         sliced = 0
     estimate, worst = _sized(tasks, d, batch_rows, whole, sliced, workers, cores, shared, budget, accumulator,
-                             cached)
+                             cached, weighted)
     if sliced and not _fits(estimate, shared, memory_per_worker):
         sliced = 0
         estimate, worst = _sized(tasks, d, batch_rows, whole, 0, workers, cores, shared, budget, accumulator,
-                                 cached)
+                                 cached, weighted)
     if not _fits(estimate, shared, memory_per_worker):
         where = tasks[worst].pieces[0].path if tasks else "input"
         raise InputError(

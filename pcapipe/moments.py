@@ -167,12 +167,12 @@ class Accumulator:
     missing, fill
         As in :func:`batch_moments`.
 
-    Notes
-    -----
-    Weighted batches (``add(x, weights)``) are computed by
-    :func:`pcapipe.weighted.weighted_batch_moments` and merged with
-    :func:`merge`; an in-place weighted fold would enter the batch as
-    ``sqrt(w) * xc`` about its weighted mean into the same ``dsyrk`` call.
+    weighted : bool
+        Batches come with row weights (frequency weights,
+        :mod:`pcapipe.weighted`): each enters as ``sqrt(w) xc`` about its
+        weighted mean into the same ``dsyrk`` call, and the update uses the
+        weight totals instead of row counts (West 1979; Schubert & Gertz
+        2018, eq. 22-23), so a weighted task also holds one ``d x d`` matrix.
     """
 
     def __init__(self, d: int, full: bool, missing: str = "fail", fill: np.ndarray | None = None,
@@ -184,12 +184,7 @@ class Accumulator:
     def add(self, x: np.ndarray, weights: np.ndarray | None = None) -> None:
         """Fold the ``(n, d)`` float64 batch ``x`` in (``x`` may be overwritten)."""
         if weights is not None:
-            part = batch_moments(x, self.full, self.missing, self.fill, weights)
-            if self._m.weight is None and self._m.rows_seen == 0:
-                self._m = Moments.empty(self.d, self.full, weighted=True)
-            if self._m.m2 is None:
-                self._m.m2 = np.zeros((self.d, self.d)) if self.full else np.zeros(self.d)
-            self._m = merge(self._m, part)
+            self._add_weighted(x, weights)
             return
         m = self._m
         n_all = x.shape[0]
@@ -202,26 +197,48 @@ class Accumulator:
             xc, mean_b, r = _center(x)
             if valid_mean is None:  # no missing values: every row is valid
                 valid_mean = mean_b
-            self._fold(xc, nb, mean_b, r)
+            self._fold(xc, m.n, nb, mean_b, r)
+            m.n += nb
         if valid_mean is not None:
             m.valid_mean = _merge_means(m.valid_n, m.valid_mean, bvalid, valid_mean)
         m.valid_n = m.valid_n + bvalid
 
-    def _fold(self, xc: np.ndarray, nb: int, mean_b: np.ndarray, r: np.ndarray) -> None:
+    def _add_weighted(self, x: np.ndarray, weights: np.ndarray) -> None:
+        """Fold a batch of frequency-weighted rows: ``sqrt(w) xc`` into the same ``dsyrk`` (weighted totals)."""
+        from .weighted import weighted_center
+
+        if self._m.weight is None and self._m.rows_seen == 0:  # made unweighted, first batch weighted
+            self._m = Moments.empty(self.d, False, weighted=True)
+            self._m.m2 = None
         m = self._m
-        na = m.n
-        n = na + nb
+        if m.weight is None:
+            raise ValueError("Accumulator.add: row weights after unweighted batches")
+        b = weighted_center(x, weights, self.missing, self.fill)
+        m.rows_seen += b.rows_seen
+        m.missing += b.missing
+        if b.xc is not None:
+            self._fold(b.xc, m.weight, b.total, b.mean, b.r)
+            m.n += b.rows
+            m.weight += b.total
+            m.weight2 += b.total2
+        m.valid_mean = _merge_means(m.valid_weight, m.valid_mean, b.valid_weight, b.valid_mean)
+        m.valid_weight = m.valid_weight + b.valid_weight
+        m.valid_n = m.valid_n + (b.rows_seen - b.missing)
+
+    def _fold(self, xc: np.ndarray, wa: float, wb: float, mean_b: np.ndarray, r: np.ndarray) -> None:
+        """Chan-Golub-LeVeque fold of a centred batch of total ``wb`` (rows or weight) into a running ``wa``."""
+        m = self._m
+        w = wa + wb
         delta = mean_b - m.mean
         if self.full:
             m.m2 = _syrk_into(m.m2, xc)
-            m.m2 = dsyr(-float(nb), r, a=m.m2, overwrite_a=1)
-            if na:
-                m.m2 = dsyr(na * nb / n, delta, a=m.m2, overwrite_a=1)
+            m.m2 = dsyr(-float(wb), r, a=m.m2, overwrite_a=1)
+            if wa:
+                m.m2 = dsyr(wa * wb / w, delta, a=m.m2, overwrite_a=1)
         else:
-            part = np.einsum("ij,ij->j", xc, xc) - nb * r * r
-            m.m2 = part if m.m2 is None else m.m2 + part + delta * delta * (na * nb / n)
-        m.mean = m.mean + delta * (nb / n) if na else mean_b.copy()
-        m.n = n
+            part = np.einsum("ij,ij->j", xc, xc) - wb * r * r
+            m.m2 = part if m.m2 is None else m.m2 + part + delta * delta * (wa * wb / w)
+        m.mean = m.mean + delta * (wb / w) if wa else mean_b.copy()
 
     def result(self) -> Moments:
         """The moments so far (the accumulator's own arrays, not copies)."""

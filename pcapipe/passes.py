@@ -113,7 +113,7 @@ class DataPasses:
         cores = min(_cores(), self.runner.parallelism) if not self.runner.distributed else 1
         return layout_for(self._pieces, self.plan.n_features, workers=info.workers,
                           memory_per_worker=info.memory_per_worker, cores=max(1, cores), shared=shared,
-                          accumulator=accumulator, cached=cached)
+                          accumulator=accumulator, cached=cached, weighted=bool(self.plan.row_weight))
 
     def _spec(self, layout: Layout) -> ReadSpec:
         p = self.plan

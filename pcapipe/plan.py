@@ -456,6 +456,7 @@ class _Scan:
         self.cfg, self.paths, self.length = cfg, paths, length
         self.columns = tuple(columns)
         weight = (cfg.input.row_weight,) if cfg.input.row_weight else ()
+        self.read_columns = (*self.columns, *weight)  # what the reader decodes, for the footer costs
         self.types = {c: schema0.field(c).type for c in (*columns, *cfg.input.keep, *weight)}
         self.default = not (cfg.input.features or cfg.input.vector_column)
         self.later: dict[str, list[str]] = {}    # numeric columns of later files missing from the first
@@ -475,10 +476,10 @@ class _Scan:
             md = footer.metadata
             self.stats.add(md)
             if leaves is None or not md.schema.equals(leaves[0]):
-                leaves = (md.schema, leaf_columns(md, self.columns))
+                leaves = (md.schema, leaf_columns(md, self.read_columns))
             rg_rows = tuple(md.row_group(i).num_rows for i in range(md.num_row_groups))
             files.append(FileInfo(path, footer.size, footer.mtime_ns, md.num_rows, rg_rows,
-                                  *footer_costs(md, self.columns, leaves[1]), footer.fingerprint))
+                                  *footer_costs(md, self.read_columns, leaves[1]), footer.fingerprint))
             for rg, n in enumerate(rg_rows):
                 if n:
                     blocks.append(Block(len(blocks), fi, path, rg, n))

@@ -100,7 +100,7 @@ def _weights_into(out: np.ndarray, arr, where: str, column: str, first_row: int)
     if out.size and out.min() >= 0 and np.isfinite(out.max()):  # NaN fails the first test
         return
     i = int(np.flatnonzero(~(np.isfinite(out) & (out >= 0)))[0])
-    raise InputError(f"{where}: input.row_weight column {column!r}, row {first_row + i}: weight {out[i]!r} is "
+    raise InputError(f"{where}: input.row_weight column {column!r}, row {first_row + i}: weight {float(out[i])!r} is "
                      "not a finite number >= 0; fix the row, or give it weight 0 to leave it out of the fit")
 
 
@@ -248,35 +248,45 @@ def _decode_error(path: str, row_group, e: BaseException) -> InputError:
                       "may be truncated or corrupt: re-copy it, or leave it out of input.paths")
 
 
-def _parallel_stream(path: str, row_group: int, spec: ReadSpec, shift, inv_scale) -> Iterator[np.ndarray]:
+def _parallel_stream(path: str, row_group: int, spec: ReadSpec, shift, inv_scale,
+                     first_row: int = 0) -> Iterator[np.ndarray]:
     """Stream a row group of scalar columns with ``spec.threads`` pyarrow readers at once.
 
     Each thread owns an interleaved share of the columns and its own file
     handle; all use the same batch size, so their batches cover the same rows
     and fill one Fortran-ordered float64 buffer.  pyarrow and the numpy copy
-    release the GIL, so the shares decode on separate cores.
+    release the GIL, so the shares decode on separate cores.  The row weights
+    (``spec.weight_column``) join the last share and fill the last column;
+    ``first_row`` (the row group's first row in its file) names a bad weight's row.
     """
     k = spec.threads
-    shares = [list(range(i, len(spec.columns), k)) for i in range(k)]
+    d = spec.n_features
+    names = spec.read_columns  # features, then the weight column
+    shares = [list(range(i, len(names), k)) for i in range(k)]
     streams = [open_file(path).iter_batches(batch_size=spec.batch_rows, row_groups=[row_group],
-                                        columns=[spec.columns[j] for j in share], use_threads=False)
+                                        columns=[names[j] for j in share], use_threads=False)
                for share in shares]
+    row = first_row
 
     def fill(i: int, out: np.ndarray) -> int:
         batch = next(streams[i], None)
         if batch is None:
             return 0
         for col, j in zip(batch.columns, shares[i]):
+            if j == d:  # the row weights: checked, never transformed
+                _weights_into(out[:batch.num_rows, d], col, path, spec.weight_column, row)
+                continue
             _column_into(out[:batch.num_rows, j], col, None if shift is None else shift[j],
                          None if inv_scale is None else inv_scale[j])
         return batch.num_rows
 
     with ThreadPoolExecutor(k, thread_name_prefix="pcapipe-decode") as pool:
         while True:
-            out = np.empty((spec.batch_rows, spec.n_features), order="F")
+            out = np.empty((spec.batch_rows, len(names)), order="F")
             rows = list(pool.map(fill, range(k), [out] * k))
             if not rows[0]:
                 return
+            row += rows[0]
             yield out if rows[0] == spec.batch_rows else out[:rows[0]]
 
 
@@ -352,9 +362,9 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
         if whole or meta.total_byte_size <= spec.whole_bytes:
             table = pf.read_row_group(row_group, columns=columns, use_threads=spec.threads > 1)
             batches = (table.slice(i, spec.batch_rows) for i in range(0, table.num_rows, spec.batch_rows))
-        elif (spec.threads > 1 and not (with_keep or spec.vector_column or spec.weight_column)
+        elif (spec.threads > 1 and not (with_keep or spec.vector_column)
               and len(spec.columns) >= 2 * spec.threads):
-            for x in _parallel_stream(path, row_group, spec, shift, inv_scale):
+            for x in _parallel_stream(path, row_group, spec, shift, inv_scale, row):
                 yield x, None
             return
         else:
@@ -388,6 +398,17 @@ def _small_table(piece, spec: ReadSpec) -> pa.Table:
     return table
 
 
+def _check_weights(table: pa.Table, piece, spec: ReadSpec) -> None:
+    """The row weights of one small row group, checked with its file and first row for the error message."""
+    values = np.empty(table.num_rows)
+    try:
+        _weights_into(values, table.column(spec.weight_column), piece.path, spec.weight_column, 0)
+    except InputError:  # only now read where the row group starts (a footer read per file otherwise)
+        first = _row_group_starts(piece.path, os.stat(piece.path).st_mtime_ns)[piece.row_group]
+        _weights_into(values, table.column(spec.weight_column), piece.path, spec.weight_column, first)
+        raise
+
+
 def _gathered(tables: list, spec: ReadSpec, shift, inv_scale) -> Iterator[np.ndarray]:
     """Decode small row groups (of several files) as full batches: one Arrow concat, not one decode each."""
     try:
@@ -405,14 +426,17 @@ def iter_task(pieces, spec: ReadSpec, shift=None, inv_scale=None) -> Iterator[np
 
     Row groups smaller than a batch (and small enough to read whole) are
     gathered until a batch is full; the others are streamed by
-    :func:`iter_block`.  A vector column and row weights are decoded file by
-    file, so that their errors name the file and row.
+    :func:`iter_block`.  A vector column is decoded file by file, so that its
+    errors name the file and row; gathered row weights are checked row group
+    by row group before they are gathered, for the same reason.
     """
     pending, rows = [], 0
-    gather = not (spec.vector_column or spec.weight_column)
+    gather = not spec.vector_column
     for p in pieces:
         if gather and p.n_rows < spec.batch_rows and p.nbytes <= spec.whole_bytes:
             pending.append(_small_table(p, spec))
+            if spec.weight_column:  # checked here, where the error can still name the file and row
+                _check_weights(pending[-1], p, spec)
             rows += p.n_rows
             if rows >= spec.batch_rows:
                 yield from _gathered(pending, spec, shift, inv_scale)

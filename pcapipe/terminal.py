@@ -79,8 +79,11 @@ def check(config, overrides=()):
                            client_memory=memory * (1 if cfg.compute.scheduler.startswith("tcp://") else workers))
     shared = cfg.compute.scheduler in ("threads", "synchronous")
     accumulator = 8 * d * d if choice.method == "covariance" else 2 * 8 * d * block
+    # the direct method holds the raw rows (weight column too) and the stacked matrix (passes.read_once)
+    held = 8 * n * (d + (1 if plan.row_weight else 0)) + 8 * n * d if choice.method == "direct" else 0
     layout = layout_for(plan.pieces(), d, workers=workers, memory_per_worker=memory,
-                        cores=max(1, min(cores(), workers)) if shared else 1, shared=shared, accumulator=accumulator)
+                        cores=max(1, min(cores(), workers)) if shared else 1, shared=shared, accumulator=accumulator,
+                        cached=held, weighted=bool(plan.row_weight))
     lines = [
         f"config      {cfg.source}",
         f"files       {len(plan.files)} ({format_size(plan.total_bytes)}), {len(plan.blocks)} blocks (row groups)",

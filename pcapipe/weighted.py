@@ -33,12 +33,14 @@ decomposed is ``F C F``, and scores are ``(F x~) @ loadings``.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from .errors import InputError
 from .moments import Moments, _gram
 
-__all__ = ["weighted_batch_moments", "weight_features", "reliability_factor", "check_total_weight",
+__all__ = ["WeightedBatch", "weighted_center", "weighted_batch_moments", "weight_features", "reliability_factor", "check_total_weight",
            "feature_weight_array", "weights_record", "weights_text"]
 
 
@@ -57,9 +59,29 @@ def _missing_rows(x, w, missing, fill):
     return x, w, miss, valid_weight, valid_mean
 
 
-def weighted_batch_moments(x: np.ndarray, w: np.ndarray, full: bool, missing: str,
-                           fill: np.ndarray | None = None) -> Moments:
-    """Weighted moments of one decoded batch (frequency weights).
+@dataclass
+class WeightedBatch:
+    """One batch's rows of positive weight, centred and scaled: ``xc = sqrt(w) (x - mean0)``.
+
+    ``mean`` is the corrected weighted mean ``mean0 + r`` and the batch's
+    co-moment is ``xc^T xc - total r r^T`` (corrected two-pass, Chan, Golub
+    & LeVeque 1983, eq. 1.7, weighted); ``xc`` is None when no row is left.
+    """
+
+    xc: np.ndarray | None
+    rows: int                 # rows of positive weight that enter the sums
+    total: float
+    total2: float
+    mean: np.ndarray
+    r: np.ndarray
+    missing: np.ndarray
+    valid_weight: np.ndarray  # weight of the finite values per feature
+    valid_mean: np.ndarray
+    rows_seen: int
+
+
+def weighted_center(x: np.ndarray, w: np.ndarray, missing: str, fill: np.ndarray | None = None) -> WeightedBatch:
+    """Apply the missing rule and centre one weighted batch about its weighted mean, in place.
 
     Parameters
     ----------
@@ -67,19 +89,8 @@ def weighted_batch_moments(x: np.ndarray, w: np.ndarray, full: bool, missing: st
         May hold NaN/inf.  Overwritten when writable.
     w : ndarray (n,)
         Row weights, finite and >= 0 (the reader checks them).
-    full, missing, fill
+    missing, fill
         As in :func:`pcapipe.moments.batch_moments`.
-
-    Returns
-    -------
-    Moments
-        ``n`` counts the rows of positive weight that entered the sums;
-        ``weight`` and ``weight2`` are the sums of their weights and squares.
-
-    Notes
-    -----
-    ``M2 = (sqrt(w) xc)^T (sqrt(w) xc)`` goes to BLAS ``syrk`` like the
-    unweighted Gram: the only extra work is one n x d scaling.
     """
     n_all, d = x.shape
     w = np.asarray(w, dtype=np.float64)
@@ -92,25 +103,54 @@ def weighted_batch_moments(x: np.ndarray, w: np.ndarray, full: bool, missing: st
         x, w = x[pos], w[pos]  # weight 0: no part in the fit
     total = float(w.sum())
     if x.shape[0] == 0:
-        part = Moments.empty(d, full, weighted=True)
-    else:
-        if not x.flags.writeable:
-            x = x.copy()
-        mean = (w @ x) / total
-        x -= mean
-        root = np.sqrt(w)
-        x *= root[:, None]
-        # corrected two-pass: remove the rounding error of the first mean
-        r = (root @ x) / total
-        m2 = _gram(x) if full else np.einsum("ij,ij->j", x, x)
-        m2 -= (np.outer(r, r) if full else r * r) * total
-        part = Moments(x.shape[0], mean + r, m2, miss, np.zeros(d, np.int64), np.zeros(d), n_all,
-                       weight=total, weight2=float(w @ w))
-    part.missing = miss
-    part.valid_n = n_all - miss
-    part.valid_weight = valid_weight if valid_weight is not None else np.full(d, total)
-    part.valid_mean = valid_mean if valid_mean is not None else part.mean.copy()
-    part.rows_seen = n_all
+        zero = np.zeros(d)
+        return WeightedBatch(None, 0, 0.0, 0.0, zero, zero, miss,
+                             valid_weight if valid_weight is not None else zero.copy(),
+                             valid_mean if valid_mean is not None else zero.copy(), n_all)
+    if not x.flags.writeable:
+        x = x.copy()
+    mean = (w @ x) / total
+    x -= mean
+    root = np.sqrt(w)
+    x *= root[:, None]
+    # corrected two-pass: remove the rounding error of the first mean
+    r = (root @ x) / total
+    return WeightedBatch(x, x.shape[0], total, float(w @ w), mean + r, r, miss,
+                         valid_weight if valid_weight is not None else np.full(d, total),
+                         valid_mean if valid_mean is not None else mean + r, n_all)
+
+
+def weighted_batch_moments(x: np.ndarray, w: np.ndarray, full: bool, missing: str,
+                           fill: np.ndarray | None = None) -> Moments:
+    """Weighted moments of one decoded batch (frequency weights).
+
+    ``x``, ``w``, ``missing`` and ``fill`` as in :func:`weighted_center`;
+    ``full`` as in :func:`pcapipe.moments.batch_moments`.
+
+    Returns
+    -------
+    Moments
+        ``n`` counts the rows of positive weight that entered the sums;
+        ``weight`` and ``weight2`` are the sums of their weights and squares.
+
+    Notes
+    -----
+    ``M2 = (sqrt(w) xc)^T (sqrt(w) xc)`` goes to BLAS ``syrk`` like the
+    unweighted Gram: the only extra work is one n x d scaling.
+    """
+    d = x.shape[1]
+    b = weighted_center(x, w, missing, fill)
+    part = Moments.empty(d, full, weighted=True)
+    if b.xc is not None:
+        m2 = _gram(b.xc) if full else np.einsum("ij,ij->j", b.xc, b.xc)
+        m2 -= (np.outer(b.r, b.r) if full else b.r * b.r) * b.total
+        part = Moments(b.rows, b.mean, m2, b.missing, np.zeros(d, np.int64), np.zeros(d), b.rows_seen,
+                       weight=b.total, weight2=b.total2)
+    part.missing = b.missing
+    part.valid_n = b.rows_seen - b.missing
+    part.valid_weight = b.valid_weight
+    part.valid_mean = b.valid_mean
+    part.rows_seen = b.rows_seen
     return part
 
 

@@ -149,3 +149,18 @@ def wait_for_checkpoint(partial, proc, min_passes=1, stage=None, timeout=120.0) 
         time.sleep(0.01)
     proc.kill()
     pytest.fail(f"no checkpoint{f' at stage {stage}' if stage else ''} within {timeout} s")
+
+
+def count_stream_calls(monkeypatch) -> list:
+    """Record the path of every row group the reader streams column-parallel (the real reader still runs)."""
+    from pcapipe import reader
+
+    calls = []
+    real = reader._parallel_stream
+
+    def counted(*args, **kwargs):
+        calls.append((args[0], args[1]))
+        yield from real(*args, **kwargs)
+
+    monkeypatch.setattr(reader, "_parallel_stream", counted)
+    return calls

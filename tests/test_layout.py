@@ -268,3 +268,23 @@ def test_a_wide_one_row_group_run_is_exact_and_scheduler_independent(tmp_path, m
     np.testing.assert_array_equal(res.spectrum["eigenvalue"].to_numpy(), ref.spectrum["eigenvalue"].to_numpy())
     np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:3],
                                np.linalg.eigvalsh(np.cov(x, rowvar=False))[::-1][:3], rtol=1e-10)
+
+
+def test_row_weights_count_in_the_estimate(tmp_path, rng):
+    """The weight column's reader buffers and its batch column count, and so does the batch copy of the fold."""
+    x = _spread(rng, 4000, 6)
+    write_parquet(tmp_path / "d", x, files=2, keep={"w": rng.uniform(0, 2, 4000)})
+    plans = {}
+    for weight in ("", "w"):
+        cfg = make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run", input={"row_weight": weight, "features": ["f*"]})
+        plans[weight] = make_plan(pcapipe.config.load_config(cfg))
+    plain, weighted = (plans[k].pieces() for k in ("", "w"))
+    # one more column decoded: 2000 rows x 8 bytes more of it per row group (the footers' uncompressed size)
+    assert all(b.nbytes > a.nbytes and b.stream_bytes > a.stream_bytes for a, b in zip(plain, weighted))
+    args = dict(workers=2, memory_per_worker=1 << 30, cores=2, shared=True, accumulator=8 * 6 * 6)
+    a = layout_for(plain, 6, **args).estimate
+    b = layout_for(weighted, 6, weighted=True, **args).estimate
+    rows = 4000  # both files gathered into one task, under the batch size
+    # the decoded batch (Arrow + float64, one more column) and the copy of its rows of positive weight
+    assert a.batch == 2 * 8 * rows * 6 and b.batch == 2 * 8 * rows * 7 + 8 * rows * 6
+    assert b.total > a.total

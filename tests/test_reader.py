@@ -12,7 +12,7 @@ import pytest
 
 from pcapipe.errors import InputError
 from pcapipe.reader import ReadSpec, batch_to_array, iter_block, iter_file
-from conftest import write_parquet
+from conftest import count_stream_calls, write_parquet
 
 
 def _spec(d, vector=False, batch_rows=1 << 16, keep=()):
@@ -195,3 +195,51 @@ def test_file_not_parquet(tmp_path):
         f.write(os.urandom(64))
     with pytest.raises(InputError, match=r"junk\.parquet: cannot be read as Parquet"):
         list(iter_block(path, 0, _spec(1)))
+
+
+# -- row weights on the fast paths: small row groups gathered, one row group decoded column-parallel ---
+def _weighted_spec(d, batch_rows, threads=1, whole_bytes=64 << 20):
+    return ReadSpec(tuple(f"f{j}" for j in range(d)), "", d, batch_rows, weight_column="w", threads=threads,
+                    whole_bytes=whole_bytes)
+
+
+def _pieces(paths):
+    from pcapipe.layout import Piece
+
+    return [Piece(i, p, rg, pq.ParquetFile(p).metadata.row_group(rg).num_rows, 1, 1)
+            for i, p in enumerate(paths) for rg in range(pq.ParquetFile(p).metadata.num_row_groups)]
+
+
+def test_weighted_small_row_groups_are_gathered_and_a_bad_weight_still_names_its_file_and_row(tmp_path, rng):
+    from pcapipe.reader import iter_task
+
+    x = rng.standard_normal((180, 3))
+    w = rng.uniform(0, 2, 180)
+    paths = write_parquet(tmp_path / "d", x, files=6, keep={"w": w})  # 6 files of 30 rows
+    batches = list(iter_task(_pieces(paths), _weighted_spec(3, 64)))
+    # gathered across files (3 x 30 rows, then sliced at 64), not six batches of 30
+    assert [b.shape for b in batches] == [(64, 4), (26, 4), (64, 4), (26, 4)]
+    np.testing.assert_array_equal(np.concatenate(batches), np.column_stack([x, w]))
+    w[3 * 30 + 7] = -1.0  # the 4th file, its row 7
+    paths = write_parquet(tmp_path / "bad", x, files=6, keep={"w": w})
+    with pytest.raises(InputError, match=r"part-003\.parquet: input\.row_weight column 'w', row 7: weight -1\.0"):
+        list(iter_task(_pieces(paths), _weighted_spec(3, 64)))
+
+
+def test_weighted_row_group_decodes_column_parallel_like_serial(tmp_path, rng, monkeypatch):
+    from pcapipe import reader
+
+    x = rng.standard_normal((5000, 8))
+    w = rng.uniform(0, 2, 5000)
+    (path,) = write_parquet(tmp_path / "d", x, keep={"w": w}, row_group=2000)  # row groups of 2000, 2000, 1000
+    calls = count_stream_calls(monkeypatch)
+    serial = list(reader.iter_task(_pieces([path]), _weighted_spec(8, 700, threads=1, whole_bytes=0)))
+    assert calls == []
+    parallel = list(reader.iter_task(_pieces([path]), _weighted_spec(8, 700, threads=2, whole_bytes=0)))
+    assert [rg for _, rg in calls] == [0, 1, 2]  # every row group streamed by two readers at once
+    assert [b.shape for b in parallel] == [b.shape for b in serial]
+    np.testing.assert_array_equal(np.concatenate(parallel), np.column_stack([x, w]))
+    w[2000 + 1456] = np.nan  # second row group: the error names the row in the file
+    (path,) = write_parquet(tmp_path / "bad", x, keep={"w": w}, row_group=2000)
+    with pytest.raises(InputError, match=r"input\.row_weight column 'w', row 3456: weight nan"):
+        list(reader.iter_task(_pieces([path]), _weighted_spec(8, 700, threads=2, whole_bytes=0)))

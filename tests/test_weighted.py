@@ -152,3 +152,54 @@ def test_feature_weights_are_f_c_f():
     f = rng.uniform(0, 2, 5)
     np.testing.assert_allclose(weight_features(c, f), np.diag(f) @ c @ np.diag(f), rtol=1e-14)
     assert weight_features(c, None) is c
+
+
+@pytest.mark.parametrize("full", [True, False])
+@pytest.mark.parametrize("missing", ["fail", "drop-rows", "impute-mean"])
+def test_accumulator_folds_weighted_batches_in_place(full, missing):
+    """Weighted batches folded into one accumulator: numpy's weighted covariance, one d x d buffer throughout."""
+    from pcapipe.moments import Accumulator
+
+    rng = np.random.default_rng(11)
+    n, d = 400, 5
+    x = rng.standard_normal((n, d)) @ rng.standard_normal((d, d)) + rng.uniform(-1e4, 1e4, d)  # large means
+    w = rng.uniform(0.0, 3.0, n)
+    w[40:80] = 0.0  # a whole batch of weight 0 folds away
+    holes = np.zeros((n, d), bool)
+    if missing != "fail":
+        holes = rng.random((n, d)) < 0.03
+        x[holes] = np.nan
+    fill = None
+    if missing == "impute-mean":  # the weighted mean of each feature's finite values (the first pass)
+        fill = np.array([np.average(x[~holes[:, j], j], weights=w[~holes[:, j]]) for j in range(d)])
+    acc = Accumulator(d, full, missing, fill, weighted=True)
+    buffers = set()
+    for a in range(0, n, 40):
+        acc.add(x[a:a + 40].copy(), w[a:a + 40].copy())
+        if acc.result().n:
+            buffers.add(id(acc.result().m2))
+    m = acc.result()
+    if full:  # folded in place: one d x d co-moment array, never a per-batch partial
+        assert len(buffers) == 1
+    xs, ws = x, w
+    if missing == "drop-rows":
+        ok = ~holes.any(axis=1)
+        xs, ws = x[ok], w[ok]
+    elif missing == "impute-mean":
+        xs = np.where(holes, fill, x)
+    # numpy aweights -> frequency weights: divide by (W - 1) / (W - W2/W) (numpy docs, cov)
+    ref = np.cov(xs, rowvar=False, aweights=ws) / reliability_factor(ws.sum(), (ws * ws).sum())
+    got = covariance_from(m, True, None) if full else m.variance()
+    want = ref if full else np.diag(ref)
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12 * np.abs(ref).max())
+    np.testing.assert_allclose(m.mean, np.average(xs, axis=0, weights=ws), rtol=1e-14)
+    assert m.weight == pytest.approx(ws.sum(), rel=1e-14) and m.n == int((ws > 0).sum()) and m.rows_seen == n
+    np.testing.assert_array_equal(m.missing, holes.sum(axis=0))
+    # the same numbers as the per-batch moments merged pairwise (the former route)
+    merged = tree_merge([weighted_batch_moments(x[a:a + 40].copy(), w[a:a + 40], full, missing, fill)
+                         for a in range(0, n, 40)])
+    np.testing.assert_allclose(m.mean, merged.mean, rtol=1e-14)
+    np.testing.assert_allclose(m.valid_mean, merged.valid_mean, rtol=1e-14)
+    np.testing.assert_allclose(covariance_from(m, True, None) if full else m.variance(),
+                               covariance_from(merged, True, None) if full else merged.variance(),
+                               rtol=0, atol=1e-12 * np.abs(ref).max())

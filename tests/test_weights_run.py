@@ -16,7 +16,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import pcapipe
-from conftest import known_spectrum, make_config, retained, write_parquet
+from conftest import count_stream_calls, known_spectrum, make_config, retained, write_parquet
 from pcapipe.checkpoint import Checkpoint
 from pcapipe.moments import batch_moments
 from pcapipe.weighted import reliability_factor
@@ -160,6 +160,7 @@ def weighted_data(tmp_path_factory):
     layouts = {
         "one": write_parquet(root / "one", x, files=1, keep={"w": w}),
         "many": write_parquet(root / "many", x, files=5, row_group=29, keep={"w": w}),
+        "small": write_parquet(root / "small", x, files=40, keep={"w": w}),  # 15-row files gathered into batches
     }
     return root, table, layouts
 
@@ -184,6 +185,7 @@ def weighted_reference(weighted_data, tmp_path_factory):
     ("many", "synchronous", 0),   # one task at a time
     ("many", "processes", 2),     # tasks and results pickled between processes
     ("one", "threads", 1),        # one file, one row group
+    ("small", "threads", 2),      # 40 small files, their weights gathered with the rows
 ])
 def test_same_answer_across_schedulers_and_layouts(tmp_path, weighted_data, weighted_reference, method, layout,
                                                    scheduler, workers):
@@ -195,6 +197,29 @@ def test_same_answer_across_schedulers_and_layouts(tmp_path, weighted_data, weig
     np.testing.assert_allclose(retained(res), retained(ref), rtol=0, atol=1e-11 * scale)
     np.testing.assert_allclose(res.loadings, ref.loadings, rtol=0, atol=1e-9)
     np.testing.assert_allclose(_scores(res), _scores(ref), rtol=0, atol=1e-9 * np.abs(_scores(ref)).max())
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_one_weighted_row_group_is_decoded_column_parallel(tmp_path, rng, monkeypatch, method):
+    """A lone streamed row group with row weights decodes on two cores, with the answer of one core."""
+    x = _data(rng, n=30_000, d=8)
+    w = rng.uniform(0, 2, x.shape[0])
+    write_parquet(tmp_path / "one", x, keep={"w": w})  # one row group of 2.2 MB (features and weights)
+    write_parquet(tmp_path / "many", x, files=4, row_group=3000, keep={"w": w})
+    streamed = count_stream_calls(monkeypatch)
+    model = {"components": 3, "method": method, "tolerance": 1e-12}
+    # 16 MiB a worker: the row group is too large to read whole, so it is streamed by the lone task's 2 threads
+    res = pcapipe.run(make_config(str(tmp_path / "one"), tmp_path / "a", input={"row_weight": "w"}, model=model,
+                                  compute={"scheduler": "threads", "workers": 2, "memory_limit": "16MiB"}))
+    assert streamed and all(p.endswith("part-000.parquet") for p, _ in streamed)
+    ref = pcapipe.run(make_config(str(tmp_path / "many"), tmp_path / "b", input={"row_weight": "w"}, model=model,
+                                  compute={"scheduler": "synchronous"}))
+    scale = retained(ref)[0]
+    np.testing.assert_allclose(retained(res), retained(ref), rtol=0, atol=1e-11 * scale)
+    np.testing.assert_allclose(res.loadings, ref.loadings, rtol=0, atol=1e-9)
+    # numpy aweights -> frequency weights (numpy docs, cov)
+    cov = np.cov(x, rowvar=False, aweights=w) / reliability_factor(w.sum(), (w * w).sum())
+    np.testing.assert_allclose(retained(res), np.linalg.eigvalsh(cov)[::-1][:3], rtol=1e-9)
 
 
 @pytest.mark.cluster
