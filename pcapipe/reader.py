@@ -264,7 +264,7 @@ def _parallel_stream(path: str, row_group: int, spec: ReadSpec, shift, inv_scale
     names = spec.read_columns  # features, then the weight column
     shares = [list(range(i, len(names), k)) for i in range(k)]
     streams = [open_file(path).iter_batches(batch_size=spec.batch_rows, row_groups=[row_group],
-                                        columns=[names[j] for j in share], use_threads=False)
+                                            columns=[names[j] for j in share], use_threads=False)
                for share in shares]
     row = first_row
 
