@@ -289,3 +289,50 @@ def test_resume_refuses_a_changed_feature_weight_table(tmp_path, rng):
     p = prepare(cfg)
     with pytest.raises(ResumeError, match="feature_weights table changed"):
         Checkpoint(str(tmp_path / "ck"), job_identity(p.cfg, p.plan)).load("hint")
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_control_limits_count_the_sum_of_the_weights(tmp_path, rng, method):
+    """With frequency weights the limits' n is sum(w): the same limits as the data with rows repeated."""
+    from scipy import stats
+
+    x = _data(rng)
+    w = rng.integers(0, 4, x.shape[0])  # weight 0 included: such rows are not in n
+    write_parquet(tmp_path / "w", x, files=3, row_group=53, keep={"w": w})
+    write_parquet(tmp_path / "rep", np.repeat(x, w, axis=0), files=2, row_group=97)
+    model = {"components": 3, "method": method, "tolerance": 1e-12}
+    a = pcapipe.run(make_config(str(tmp_path / "w"), tmp_path / "a", input={"row_weight": "w"}, model=model))
+    b = pcapipe.run(make_config(str(tmp_path / "rep"), tmp_path / "b", model=model))
+    n, k, c = float(w.sum()), 3, a.limits["confidence"]
+    # Tracy, Young & Mason (1992), J. Quality Technology 24(2): eq. 5 (training rows), eq. 7 (new rows)
+    t2_new = k * (n - 1) * (n + 1) / (n * (n - k)) * stats.f.ppf(c, k, n - k)
+    t2_training = (n - 1) ** 2 / n * stats.beta.ppf(c, k / 2, (n - k - 1) / 2)
+    # Box (1954) / Nomikos & MacGregor (1995) eq. 16 from the discarded eigenvalues of numpy's fweights covariance
+    lam = np.linalg.eigvalsh(np.cov(x, rowvar=False, fweights=w))[::-1][k:]
+    theta1, theta2 = lam.sum(), (lam**2).sum()
+    spe = theta2 / theta1 * stats.chi2.ppf(c, theta1**2 / theta2)
+    for res in (a, b):
+        lim = res.limits
+        assert lim["rows"] == n
+        assert lim["t2"] == pytest.approx(t2_new, rel=1e-12)
+        assert lim["t2_training"] == pytest.approx(t2_training, rel=1e-12)
+        assert lim["spe"] == pytest.approx(spe, rel=1e-9)
+    # the training alarms of the weighted run: the stored t2 against that limit, row by row
+    t2 = a.scores().compute()["t2"].to_numpy()
+    alarms = a.scores().compute()["t2_alarm"].to_numpy()
+    np.testing.assert_array_equal(alarms, t2 > a.limits["t2_training"])
+
+
+def test_control_limits_with_real_weights_use_their_sum(tmp_path, rng):
+    from scipy import stats
+
+    x = _data(rng)
+    w = rng.uniform(0.0, 2.5, x.shape[0])
+    write_parquet(tmp_path / "d", x, files=2, row_group=71, keep={"w": w})
+    res = pcapipe.run(make_config(str(tmp_path / "d"), tmp_path / "r", input={"row_weight": "w"},
+                                  model={"components": 2}))
+    n, c = w.sum(), res.limits["confidence"]
+    assert res.limits["rows"] == pytest.approx(n, rel=1e-13) and res.manifest["rows"] == x.shape[0]
+    # Tracy, Young & Mason (1992) eq. 7 with n = sum(w), a non-integer degree of freedom
+    want = 2 * (n - 1) * (n + 1) / (n * (n - 2)) * stats.f.ppf(c, 2, n - 2)
+    assert res.limits["t2"] == pytest.approx(want, rel=1e-12)
