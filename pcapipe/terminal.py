@@ -64,6 +64,7 @@ def check(config, overrides=()):
     plan, cfg = p.plan, p.cfg
     n, d = plan.n_rows, plan.n_features
     error = None
+    verdict = "NOT ok: the cluster did not answer (see compute above); nothing was written"
     if cfg.compute.scheduler.startswith("tcp://"):
         workers, memory, threads, compute_text, error = _contact_cluster(cfg)
         memory_note = "per worker"
@@ -71,6 +72,17 @@ def check(config, overrides=()):
         workers, memory, memory_note = _local_memory(cfg)
         threads = min(cores(), workers)
         compute_text = f"{workers} worker(s), {format_size(memory)} {memory_note}"
+        if cfg.compute.scheduler == "local-cluster":
+            from .cluster import MIN_WORKER_MEMORY, check_worker_memory
+            from .errors import ClusterError
+
+            try:  # run refuses this before starting a worker: say it here too
+                check_worker_memory(memory, workers)
+            except ClusterError as e:
+                error = e
+                verdict = (f"NOT ok: {format_size(memory)} per worker is below the local-cluster minimum of "
+                           f"{format_size(MIN_WORKER_MEMORY)}, which run refuses: raise compute.memory_limit "
+                           "or lower compute.workers; nothing was written")
     comp = cfg.model.components
     k = comp if isinstance(comp, int) else min(d, max(2, cfg.model.oversample))
     block = min(d, k + cfg.model.oversample)
@@ -100,8 +112,7 @@ def check(config, overrides=()):
         f"{layout.batch_rows} rows, {layout.in_flight} at once x {layout.threads} thread(s)",
         f"output      {p.writer.directory}",
         *_feature_notes(plan),
-        "ok: nothing was written" if error is None else
-        "NOT ok: the cluster did not answer (see compute above); nothing was written",
+        "ok: nothing was written" if error is None else verdict,
     ]
     return "\n".join(lines), error
 

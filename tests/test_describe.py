@@ -201,3 +201,23 @@ def test_check_says_plainly_when_the_scheduler_does_not_answer(tmp_path):
     assert done.stdout.rstrip().endswith("NOT ok: the cluster did not answer (see compute above); nothing was written")
     errors = [line for line in done.stderr.splitlines() if line.startswith("error: ")]
     assert len(errors) == 1 and "compute.scheduler" in errors[0] and f"127.0.0.1:{port}" in errors[0]
+
+
+def test_check_says_what_run_refuses_about_local_cluster_memory(tmp_path):
+    rng = np.random.default_rng(0)
+    write_parquet(tmp_path / "in", rng.standard_normal((200, 4)), files=2)
+    cfg = make_config(str(tmp_path / "in" / "*.parquet"), tmp_path / "run", model={"components": 2},
+                      compute={"scheduler": "local-cluster", "workers": 2, "memory_limit": "128MiB"})
+    path = write_toml(tmp_path / "check.toml", cfg)
+    done = run_cli("check", path)
+    last = done.stdout.rstrip().splitlines()[-1]
+    assert last == ("NOT ok: 128.0 MiB per worker is below the local-cluster minimum of 256.0 MiB, which run "
+                    "refuses: raise compute.memory_limit or lower compute.workers; nothing was written")
+    ran = run_cli("run", path)  # run refuses it before starting a worker, with the same error line
+    assert done.returncode == ran.returncode == 2
+    errors = [line for line in done.stderr.splitlines() if line.startswith("error: ")]
+    assert len(errors) == 1 and errors == [line for line in ran.stderr.splitlines() if line.startswith("error: ")]
+    assert "compute.memory_limit" in errors[0] and not (tmp_path / "run").exists()
+    # at the minimum, check is content (and starts no worker)
+    ok = run_cli("check", path, "--set", "compute.memory_limit=256MiB")
+    assert ok.returncode == 0 and ok.stdout.rstrip().endswith("ok: nothing was written")
