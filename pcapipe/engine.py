@@ -1,7 +1,9 @@
 """Run a whole job: config -> plan -> moments -> operator -> solver -> run directory.
 
-This module wires the others together and owns the statistics conventions
-of the outputs (see README, "Run directory"):
+This module wires the others together (the input checks on the moments are
+in :mod:`pcapipe.screening`, the preprocessing conventions in
+:mod:`pcapipe.conventions`); the statistics conventions of the outputs (see
+README, "Run directory"):
 
 * covariance denominator n - 1; ``scale = true`` divides by the ddof=1
   standard deviation, so the matrix is exactly the correlation matrix;
@@ -40,8 +42,9 @@ from .outputs import build_tables, component_names, manifest_for
 from .passes import DataPasses
 from .plan import Plan, make_plan
 from .scoring import alarm_totals
-from .conventions import Transform, missing_rule, orient, total_variance, transform_for
-from .weighted import check_total_weight, feature_weight_array, weight_features
+from .screening import moments_pass, preprocessing, screened
+from .conventions import orient, total_variance
+from .weighted import feature_weight_array, weight_features
 from .writer import RunWriter, partial_dir_for
 
 __all__ = ["run", "prepare", "Prepared", "check_components"]
@@ -85,101 +88,6 @@ def prepare(config, overrides=()) -> Prepared:
                          "PCA needs at least 2 rows: add rows or files to input.paths")
     check_components(cfg.model.components, plan.n_rows, plan.n_features)
     return Prepared(cfg, plan, writer, {"plan_seconds": time.perf_counter() - t0})
-
-
-def _missing_error(plan: Plan, m: Moments) -> InputError:
-    idx = np.flatnonzero(m.missing)
-    worst = idx[np.argsort(-m.missing[idx], kind="stable")][:5]
-    listed = ", ".join(f"{plan.features[i]} ({int(m.missing[i])})" for i in worst)
-    more = f" and {idx.size - worst.size} more" if idx.size > worst.size else ""
-    return InputError(
-        f"input: missing or non-finite values in {idx.size} feature(s): {listed}{more}; "
-        'set input.missing = "drop-rows" or "impute-mean", or clean the data'
-    )
-
-
-def _named(plan: Plan, mask: np.ndarray) -> str:
-    idx = np.flatnonzero(mask)
-    more = f" and {idx.size - 5} more" if idx.size > 5 else ""
-    return ", ".join(plan.features[i] for i in idx[:5]) + more
-
-
-def _check_finite(plan: Plan, m: Moments, center: bool) -> None:
-    """Refuse moments that overflowed float64 (values near 1e154 and beyond square past 1.8e308)."""
-    diag = np.diag(m.m2) if m.full else m.m2
-    bad = ~np.isfinite(m.mean) | ~np.isfinite(diag)
-    if m.full:
-        bad |= ~np.isfinite(np.triu(m.m2)).all(axis=0) | ~np.isfinite(np.triu(m.m2)).all(axis=1)
-    if not center:  # the second moment about zero squares the mean too
-        with np.errstate(over="ignore"):
-            bad |= ~np.isfinite(m.mean**2 * m.n)
-    if bad.any():
-        raise InputError(
-            f"input: feature(s) {_named(plan, bad)} hold values too large for float64 arithmetic: "
-            "their sums of squares overflow (beyond about 1.8e308, i.e. values of about 1e150 or more); "
-            "rescale them (divide by a power of ten) or leave them out with input.exclude"
-        )
-
-
-def _moments_pass(p: Prepared, passes: DataPasses, full: bool) -> Moments:
-    """The moments pass (a second one for impute-mean), checked by :func:`_missing_rule`."""
-    mode = p.cfg.input.missing
-    return _missing_rule(p, passes.moments(full, mode), lambda fill: passes.moments(full, mode, fill=fill))
-
-
-def _missing_rule(p: Prepared, first: Moments, again) -> Moments:
-    """Apply the missing rule to the moments of a pass; ``again(fill)`` recomputes them with a fill (impute-mean).
-
-    Raises
-    ------
-    InputError
-        Missing values under ``fail``, a feature with nothing to impute,
-        weights that leave nothing to fit, overflow, or fewer than 2 rows.
-    """
-    mode = p.cfg.input.missing
-    m = first
-    if m.missing.any():
-        if mode == "fail":
-            raise _missing_error(p.plan, m)
-        log.info("missing values in %d feature(s): %s", int((m.missing > 0).sum()), mode)
-        if mode == "impute-mean":
-            empty = m.valid_n == 0
-            if empty.any():
-                raise InputError(
-                    f"input: feature(s) {_named(p.plan, empty)} have no finite value in any of the "
-                    f"{m.rows_seen} rows, so input.missing = \"impute-mean\" has no mean to fill in; "
-                    "leave them out with input.exclude"
-                )
-            m = again(m.valid_mean)
-    if m.weight is not None:
-        check_total_weight(p.plan, m)
-    _check_finite(p.plan, m, p.cfg.model.center)
-    if m.n < 2:
-        raise InputError(f"input: {m.n} row(s) left after input.missing = {mode!r}; PCA needs at least 2 rows: "
-                         'use input.missing = "impute-mean" or clean the data')
-    return m
-
-
-def _preprocessing(p: Prepared, m: Moments) -> tuple[Transform, np.ndarray, np.ndarray]:
-    """The per-feature shift and scale, and the transform the tasks apply."""
-    std = np.sqrt(m.variance())
-    mean = m.mean
-    if p.cfg.model.scale:
-        flat = std <= 8 * np.finfo(float).eps * np.maximum(np.abs(mean), 1e-300)
-        if flat.any():
-            names = [p.plan.features[i] for i in np.flatnonzero(flat)[:5]]
-            raise InputError(
-                f"input: feature(s) {', '.join(names)} are constant ({int(flat.sum())} in all) and cannot "
-                "be scaled to unit variance; leave them out with input.exclude or set model.scale = false"
-            )
-        scale_used = std
-    else:
-        scale_used = np.ones_like(std)
-    mc = p.cfg.model
-    transform = transform_for(mean, scale_used, center=mc.center, scale=mc.scale,
-                              feature_weights=p.plan.feature_weights,
-                              missing=missing_rule(p.cfg.input.missing, seen=bool(m.missing.any())))
-    return transform, std, scale_used
 
 
 def _solver_depth(d: int, block: int, memory: int) -> int:
@@ -284,7 +192,7 @@ class _Job:
         warned = moment_warnings(p.plan, m, p.cfg.model.scale, p.cfg.model.center)  # row ids, one dominant feature
         for text in warned:
             log.warning("%s", text)
-        transform, std, scale_used = _preprocessing(p, m)
+        transform, std, scale_used = preprocessing(p.cfg, p.plan, m)
         res, trace, cache = self._solve(passes, choice, m, transform, scale_used)
         vectors = orient(res.vectors)
         t = time.perf_counter()
@@ -341,10 +249,10 @@ class _Job:
         if choice.method == "direct":
             # one read: the raw rows stay in memory and the moments come from them
             self.rows, first = passes.read_once(mode)
-            m = _missing_rule(self.p, first, lambda fill: passes.rows_moments(self.rows, mode, fill))
+            m = screened(self.p.cfg, self.p.plan, first, lambda fill: passes.rows_moments(self.rows, mode, fill))
         else:
-            m = _moments_pass(self.p, passes, full=choice.method == "covariance")
-        _preprocessing(self.p, m)  # bad input (constant features) must fail before a checkpoint exists
+            m = moments_pass(self.p.cfg, self.p.plan, passes, full=choice.method == "covariance")
+        preprocessing(self.p.cfg, self.p.plan, m)  # bad input (constant features) must fail before a checkpoint exists
         self.timings["moments_seconds"] = time.perf_counter() - t
         self._save("moments", choice, passes, moments=m)
         return m

@@ -141,12 +141,12 @@ def test_run_resumes_after_the_moments_pass(tmp_path, rng, method):
     p = prepare(cfg)
     ck = Checkpoint(p.writer.partial, job_identity(p.cfg, p.plan))
     os.makedirs(p.writer.partial)
-    from pcapipe.engine import _moments_pass
+    from pcapipe.screening import moments_pass
     from pcapipe.compute import Runner
     from pcapipe.passes import DataPasses
 
     with Runner(p.cfg.compute) as runner:
-        m = _moments_pass(p, DataPasses(p.plan, runner), full=method == "covariance")
+        m = moments_pass(p.cfg, p.plan, DataPasses(p.plan, runner), full=method == "covariance")
     ck.save("moments", moments=m, method=method, method_reason="test", method_estimates={}, passes=1)
     res = pcapipe.run(cfg, resume=True)
     np.testing.assert_allclose(retained(res), retained(ref), rtol=1e-12)
