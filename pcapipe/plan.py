@@ -1,5 +1,7 @@
 """Plan a run: resolve input files, read footers and schemas, select features, cut blocks.
 
+The column selection and the schema checks are in :mod:`pcapipe.columns`.
+
 Nothing is decoded here: only Parquet footers are read, so planning a
 terabyte of files costs a few milliseconds per file.  Every check that can be
 made from the schema is made here, before any dask graph exists, so a bad
@@ -8,17 +10,17 @@ column fails in seconds instead of an hour into the run.
 
 from __future__ import annotations
 
-import fnmatch
 import hashlib
 import logging
 import os
-import re
 from dataclasses import dataclass
 from typing import NamedTuple
 
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from .columns import (PANDAS_INDEX, check_file_schema, check_keep, check_keep_names, check_row_weight,
+                      default_left_out, feature_names_for, is_list, matches, preview, select_features)
 from .config import Config, resolve_path
 from .discover import find_inputs, resolve_inputs
 from .errors import InputError
@@ -27,12 +29,9 @@ from .guards import FooterStats
 from .layout import Piece, footer_costs, leaf_columns
 from .reader import is_numeric as _is_numeric
 from .reader import one_line as _one_line
-from .monitor import STAT_COLUMNS  # the columns the scores hold beside keep and PC1..PCk
 
 log = logging.getLogger("pcapipe")
 
-# pandas.DataFrame.to_parquet stores a non-default index as these columns: not measurements.
-_PANDAS_INDEX = re.compile(r"__index_level_[0-9]+__")
 # Bytes read from the end of a file to reach its footer in one read (pyarrow reads as much).
 _TAIL_BYTES = 64 << 10
 
@@ -192,20 +191,6 @@ def footer_fingerprint(path: str) -> str:
         return hashlib.sha256(f.read(length)).hexdigest()[:32]
 
 
-def _is_list(t: pa.DataType) -> bool:
-    return pa.types.is_fixed_size_list(t) or pa.types.is_list(t) or pa.types.is_large_list(t)
-
-
-def _not_numeric(path: str, name: str, t: pa.DataType) -> InputError:
-    if _is_list(t):
-        hint = "a list column is read with input.vector_column, not input.features"
-    elif pa.types.is_struct(t) or pa.types.is_map(t):
-        hint = "nested columns cannot be features; write their fields as numeric columns"
-    else:
-        hint = "cast it to a number, or leave it out of input.features (or add it to input.exclude)"
-    return InputError(f"{path}: column {name!r} has type {t}, not numeric; {hint}")
-
-
 def _first_vector(path: str, pf: pq.ParquetFile, column: str):
     """The first row of ``column``, decoding one batch rather than a whole row group."""
     for rg in range(pf.metadata.num_row_groups):
@@ -221,7 +206,7 @@ def _file_with_rows(paths, opened: dict, column: str) -> tuple[str, pq.ParquetFi
         pf = opened[path] if path in opened else opened.setdefault(path, _open_footer(path))
         if pf.metadata.num_rows:
             schema = pf.schema_arrow
-            usable = schema.get_field_index(column) >= 0 and _is_list(schema.field(column).type)
+            usable = schema.get_field_index(column) >= 0 and is_list(schema.field(column).type)
             return path, pf if usable else None  # else the schema check names the file
     raise InputError(f"input.vector_column {column!r}: none of the {len(paths)} input file(s) has rows to "
                      "take the vector length from; add files with rows to input.paths")
@@ -230,7 +215,7 @@ def _file_with_rows(paths, opened: dict, column: str) -> tuple[str, pq.ParquetFi
 def _vector_length(paths, opened: dict, column: str, schema: pa.Schema) -> int:
     path = paths[0]
     t = schema.field(column).type
-    if not _is_list(t):
+    if not is_list(t):
         raise InputError(
             f"{path}: input.vector_column {column!r} has type {t}, expected a list of floats; "
             "name a list column, or select scalar columns with input.features instead"
@@ -259,128 +244,6 @@ def _vector_length(paths, opened: dict, column: str, schema: pa.Schema) -> int:
     return length
 
 
-def feature_names_for(column: str, length: int) -> tuple[str, ...]:
-    """Names of the entries of a vector column, as used in loadings and features."""
-    return tuple(f"{column}[{i}]" for i in range(length))
-
-
-def _match(name: str, pattern: str, names) -> bool:
-    """Glob match, except that a pattern which is exactly a column's name (``br[0]``) means that column."""
-    return name == pattern if pattern in names else fnmatch.fnmatchcase(name, pattern)
-
-
-def _matches(name: str, patterns, names) -> bool:
-    return any(_match(name, p, names) for p in patterns)
-
-
-def _check_keep_names(cfg: Config) -> None:
-    """A keep column must not share its name with a column pcapipe adds to the scores."""
-    comp = cfg.model.components
-    pcs = f"PC1..PC{comp}" if isinstance(comp, int) else "PC1, PC2, ..."
-    for name in cfg.input.keep:
-        pc = re.fullmatch(r"PC([1-9][0-9]*)", name)
-        if name in STAT_COLUMNS or (pc and (not isinstance(comp, int) or int(pc.group(1)) <= comp)):
-            raise InputError(
-                f"input.keep: column {name!r} has the name of a column the scores get ({pcs}, "
-                f"{', '.join(STAT_COLUMNS)}); leave it out of input.keep, or rename it in the data"
-            )
-
-
-def _check_keep(cfg: Config, schema: pa.Schema, path: str) -> None:
-    for name in cfg.input.keep:
-        if schema.get_field_index(name) < 0:
-            raise InputError(f"{path}: input.keep column {name!r} does not exist; columns are "
-                             f"{_preview(schema.names)}; fix or remove it in input.keep")
-
-
-def _select_features(cfg: Config, schema: pa.Schema, path: str) -> tuple[str, ...]:
-    keep = set(cfg.input.keep)
-    weight = cfg.input.row_weight
-    if weight and weight in cfg.input.features:
-        raise InputError(f"{path}: input.features names the input.row_weight column {weight!r}; the row "
-                         "weights are never a feature: remove it from input.features")
-    names = [n for n in schema.names if n not in keep and n != weight]
-    every = set(schema.names)
-    if cfg.input.features:
-        for p in cfg.input.features:
-            if not any(_match(n, p, every) for n in names):
-                held = [n for n in keep if _match(n, p, every)]
-                why = (f"matches only input.keep column(s) {', '.join(held)}, which are never features"
-                       if held else f"matches no column; columns are {_preview(names)}")
-                raise InputError(f"{path}: input.features pattern {p!r} {why}; fix input.features")
-        chosen = [n for n in names if _matches(n, cfg.input.features, every)]
-        for n in chosen:
-            if not _is_numeric(schema.field(n).type):
-                raise _not_numeric(path, n, schema.field(n).type)
-    else:
-        chosen = [n for n in names if _is_numeric(schema.field(n).type) and not _PANDAS_INDEX.fullmatch(n)]
-    for p in cfg.input.exclude:
-        if not any(_match(n, p, every) for n in chosen):
-            # Not an error: one exclude list is often shared by several datasets.
-            log.warning("input.exclude pattern %r removes no feature column of %s", p, path)
-    chosen = [n for n in chosen if not _matches(n, cfg.input.exclude, every)]
-    if not chosen:
-        raise InputError(
-            f"{path}: no numeric feature columns selected (input.features={list(cfg.input.features)}, "
-            f"input.exclude={list(cfg.input.exclude)}); columns are {_preview(schema.names)}; "
-            "name numeric columns in input.features"
-        )
-    return tuple(chosen)
-
-
-def _left_out(cfg: Config, schema: pa.Schema, chosen) -> list[tuple[str, str]]:
-    """Default selection: the columns that are neither features nor keep nor excluded, and why."""
-    if cfg.input.features or cfg.input.vector_column:
-        return []
-    every = set(schema.names)
-    out = []
-    for f in schema:
-        if (f.name in chosen or f.name in cfg.input.keep or f.name == cfg.input.row_weight
-                or _matches(f.name, cfg.input.exclude, every)):
-            continue
-        t = f.type
-        why = ("boolean" if pa.types.is_boolean(t) else "decimal" if pa.types.is_decimal(t)
-               else "pandas index" if _PANDAS_INDEX.fullmatch(f.name) else str(t))
-        out.append((f.name, why))
-    return out
-
-
-def _preview(names, limit: int = 8) -> str:
-    names = list(names)
-    shown = ", ".join(names[:limit])
-    return shown + (f", ... ({len(names)} in all)" if len(names) > limit else "")
-
-
-def _same_kind(a: pa.DataType, b: pa.DataType) -> bool:
-    """Types that decode alike: any two numeric types, two string types, or lists of numbers."""
-    if _is_numeric(a) and _is_numeric(b):
-        return True
-    text = (pa.types.is_string, pa.types.is_large_string, pa.types.is_string_view)
-    if any(f(a) for f in text) and any(f(b) for f in text):
-        return True
-    if _is_list(a) and _is_list(b):
-        fixed = [t.list_size for t in (a, b) if pa.types.is_fixed_size_list(t)]
-        return len(set(fixed)) <= 1 and _is_numeric(a.value_type) and _is_numeric(b.value_type)
-    return a == b
-
-
-def _check_file_schema(path: str, schema: pa.Schema, first: str, types: dict, length: int) -> None:
-    """Every file needs the first file's columns, with types that decode alike."""
-    for name, want in types.items():
-        if schema.get_field_index(name) < 0:
-            raise InputError(
-                f"{path}: column {name!r} is missing, but {first} has it; every input file needs the "
-                "same columns: rewrite this file or leave it out of input.paths"
-            )
-        t = schema.field(name).type
-        size_ok = not (length and pa.types.is_fixed_size_list(t) and t.list_size != length)
-        if not (_same_kind(t, want) and size_ok):
-            raise InputError(
-                f"{path}: column {name!r} has type {t}, but {first} has {want}; make the types agree "
-                "across files (rewrite this file or leave it out of input.paths)"
-            )
-
-
 def make_plan(cfg: Config) -> Plan:
     """Resolve the inputs of ``cfg`` and check every file's schema.
 
@@ -393,12 +256,12 @@ def make_plan(cfg: Config) -> Plan:
         A pattern matches nothing, a file is not Parquet, a column is missing,
         not numeric, or differs in type between files.
     """
-    _check_keep_names(cfg)
+    check_keep_names(cfg)
     found = find_inputs(cfg.input.paths, cfg.base_dir)
     paths = found.files
     first = _open_footer(paths[0])
     schema0 = first.schema_arrow
-    _check_keep(cfg, schema0, paths[0])
+    check_keep(cfg, schema0, paths[0])
     vec = cfg.input.vector_column
     opened = {paths[0]: first}
     length = 0
@@ -406,21 +269,21 @@ def make_plan(cfg: Config) -> Plan:
         if schema0.get_field_index(vec) < 0:
             raise InputError(
                 f"{paths[0]}: input.vector_column {vec!r} is not a column; columns are "
-                f"{_preview(schema0.names)}; fix input.vector_column"
+                f"{preview(schema0.names)}; fix input.vector_column"
             )
         length = _vector_length(paths, opened, vec, schema0)
         columns: tuple[str, ...] = (vec,)
     else:
-        columns = _select_features(cfg, schema0, paths[0])
+        columns = select_features(cfg, schema0, paths[0])
     weight = cfg.input.row_weight
     if weight:
-        _check_row_weight(schema0, weight, paths[0])
+        check_row_weight(schema0, weight, paths[0])
     scan = _Scan(cfg, paths, schema0, columns, length)
     files, blocks = scan.run(opened)
     features = feature_names_for(vec, length) if vec else columns
     width = schema0.field(vec).type.value_type.bit_width if vec else \
         max(schema0.field(c).type.bit_width for c in columns)
-    left_out = tuple(_left_out(cfg, schema0, columns)) + scan.left_out()
+    left_out = tuple(default_left_out(cfg, schema0, columns)) + scan.left_out()
     if left_out:
         log.info("input.features: %d column(s) left out of the default selection: %s", len(left_out),
                  ", ".join(f"{n} ({why})" for n, why in left_out))
@@ -431,17 +294,6 @@ def make_plan(cfg: Config) -> Plan:
     return Plan(tuple(files), tuple(blocks), features, columns, vec, tuple(cfg.input.keep), max(width // 8, 1),
                 weight, fw, found.skipped, found.duplicates, left_out, scan.stats.row_ids(n_rows),
                 tuple(scan.stats.hints(n_rows, cfg.model.scale, paths[0])))
-
-
-def _check_row_weight(schema: pa.Schema, column: str, path: str) -> None:
-    """``input.row_weight`` must be a numeric column (presence in the other files: _check_file_schema)."""
-    if schema.get_field_index(column) < 0:
-        raise InputError(f"{path}: input.row_weight column {column!r} does not exist; columns are "
-                         f"{_preview(schema.names)}; fix input.row_weight")
-    t = schema.field(column).type
-    if not _is_numeric(t):
-        raise InputError(f"{path}: input.row_weight column {column!r} has type {t}, not numeric; the row "
-                         "weights must be numbers >= 0")
 
 
 class _Scan:
@@ -472,7 +324,7 @@ class _Scan:
             if footer.schema is not None:
                 if self.default and fi:
                     self._note_drift(path, footer.schema)
-                _check_file_schema(path, footer.schema, self.paths[0], self.types, self.length)
+                check_file_schema(path, footer.schema, self.paths[0], self.types, self.length)
             md = footer.metadata
             self.stats.add(md)
             if leaves is None or not md.schema.equals(leaves[0]):
@@ -488,8 +340,8 @@ class _Scan:
     def _note_drift(self, path: str, schema: pa.Schema) -> None:
         every = set(schema.names)
         for f in schema:
-            if (f.name not in self.types and _is_numeric(f.type) and not _PANDAS_INDEX.fullmatch(f.name)
-                    and not _matches(f.name, self.cfg.input.exclude, every)):
+            if (f.name not in self.types and _is_numeric(f.type) and not PANDAS_INDEX.fullmatch(f.name)
+                    and not matches(f.name, self.cfg.input.exclude, every)):
                 self.later.setdefault(f.name, []).append(path)
 
     def left_out(self) -> tuple[tuple[str, str], ...]:
