@@ -160,6 +160,7 @@ class _Job:
         self.timings = dict(self.state.get("timings", {}), **p.timings)
         self.resumed = self.state.get("stage")
         self.rows = None  # the direct method's raw rows, held from the one read to the decomposition
+        self.hold_note = None  # how the matrix-free method's rows were held (or why not)
 
     def _choose(self):
         p, info = self.p, self.runner.info
@@ -173,7 +174,8 @@ class _Job:
         client = info.memory_per_worker * (1 if self.runner.distributed else info.workers)
         return choose_method(p.cfg.model.method, n, d, self.block, p.plan.total_bytes,
                              info.memory_per_worker, info.workers, self._cores(), k=k_guess,
-                             can_cache=info.scheduler != "processes", client_memory=client)
+                             can_cache=info.scheduler != "processes", client_memory=client,
+                             held_itemsize=p.plan.held_itemsize)
 
     def _cores(self) -> int:
         # a cluster's threads are all cores at work; locally no more than this machine has
@@ -250,11 +252,21 @@ class _Job:
             # one read: the raw rows stay in memory and the moments come from them
             self.rows, first = passes.read_once(mode)
             m = screened(self.p.cfg, self.p.plan, first, lambda fill: passes.rows_moments(self.rows, mode, fill))
+        elif choice.method == "matrix-free" and (first := self._hold(passes, mode)) is not None:
+            # one read: the rows stay in worker memory for every product, the moments come with them
+            m = screened(self.p.cfg, self.p.plan, first, lambda fill: passes.moments(False, mode, fill=fill))
         else:
             m = moments_pass(self.p.cfg, self.p.plan, passes, full=choice.method == "covariance")
         preprocessing(self.p.cfg, self.p.plan, m)  # bad input (constant features) must fail before a checkpoint exists
         self.timings["moments_seconds"] = time.perf_counter() - t
         self._save("moments", choice, passes, moments=m)
+        return m
+
+    def _hold(self, passes: DataPasses, missing: str):
+        """Hold the rows for the matrix-free products when they fit; their moments, or None."""
+        t = time.perf_counter()
+        self.hold_note, m = _maybe_hold(passes, self.runner, missing)
+        self.timings["cache_seconds"] = self.timings.get("cache_seconds", 0.0) + time.perf_counter() - t
         return m
 
     def _solve(self, passes, choice, m, transform, scale_used):
@@ -283,9 +295,9 @@ class _Job:
         if solved:
             return self._solution(), trace, self.state.get("cache", cache)
         if choice.method == "matrix-free":
-            t = time.perf_counter()
-            cache = _maybe_cache(passes, self.runner, transform, m.n, d)
-            self.timings["cache_seconds"] = time.perf_counter() - t
+            if not passes.held and self.hold_note is None:  # resumed after the moments: hold the rows now
+                self._hold(passes, p.cfg.input.missing)
+            cache = self.hold_note
         t = time.perf_counter()
         res = self._iterate(op, passes, choice)
         passes.release()
@@ -341,15 +353,18 @@ def _solution_arrays(res: SolverResult) -> dict:
 _EXTRA = ("method", "extra_values", "extra_residuals", "extra_converged")
 
 
-def _maybe_cache(passes: DataPasses, runner, transform, n: int, d: int) -> str:
-    decoded = 8 * n * d
+def _maybe_hold(passes: DataPasses, runner, missing: str) -> tuple[str, Moments | None]:
+    """Hold the raw rows in memory for the matrix-free passes when they fit: (what was done, their moments)."""
+    held = passes.held_bytes()
     total = runner.info.memory_per_worker * runner.info.workers
     if runner.info.scheduler == "processes":
-        return "re-read every pass (the processes scheduler cannot keep blocks in worker memory)"
-    if decoded > CACHE_SHARE * total:
-        return (f"re-read every pass (decoded data {decoded / 2**20:.0f} MiB exceed {CACHE_SHARE:.0%} of the "
-                f"{total / 2**20:.0f} MiB memory budget)")
-    if not passes.cache(transform):
-        return (f"re-read every pass (decoded data {decoded / 2**20:.0f} MiB do not fit the memory estimate "
-                "next to the product tasks)")
-    return f"decoded blocks kept in worker memory ({decoded / 2**20:.0f} MiB)"
+        return "re-read every pass (the processes scheduler cannot keep rows in worker memory)", None
+    if held > CACHE_SHARE * total:
+        return (f"re-read every pass (the rows, {held / 2**20:.0f} MiB in memory, exceed {CACHE_SHARE:.0%} of the "
+                f"{total / 2**20:.0f} MiB memory budget)"), None
+    m = passes.hold(missing)
+    if m is None:
+        return (f"re-read every pass (the rows, {held / 2**20:.0f} MiB in memory, do not fit the memory estimate "
+                "next to the product tasks)"), None
+    kind = "float32 as stored" if passes.plan.held_itemsize == 4 else "float64"
+    return f"rows read once and held in worker memory ({held / 2**20:.0f} MiB, {kind})", m

@@ -15,9 +15,9 @@ Three methods (DESIGN.md, "covariance operator"):
   twice (the blocks and the stacked matrix) within the client's memory.
 * ``matrix-free``: a moments pass, then ``A`` operator applications of
   ``4 n d b`` flops each (b = k + oversample), each re-decoding the data
-  unless the decoded blocks are kept in worker memory (when they take at most
-  40% of the cluster's memory), plus one Rayleigh-Ritz per application on a
-  basis of up to ``depth * b`` vectors.
+  unless the rows are held in worker memory (read once, raw, float32 when
+  stored so; when they take at most 40% of the cluster's memory), plus one
+  Rayleigh-Ritz per application on a basis of up to ``depth * b`` vectors.
 
 The rates are constants measured on the development machine (2 cores,
 2026-12-02) by ``tests/perf/rates.py``; see DEVELOPERS.md, "Benchmarks".  They
@@ -82,7 +82,8 @@ class MethodChoice:
     estimates: dict = field(default_factory=dict)
 
 
-def _estimates(n, d, k, block, workers, cores, memory_per_worker, can_cache, client_memory) -> dict:
+def _estimates(n, d, k, block, workers, cores, memory_per_worker, can_cache, client_memory,
+               held_itemsize=8) -> dict:
     flops = lambda rate: rate * cores  # noqa: E731 - the whole machine's rate
     decoded = 8.0 * n * d
     read = decoded / (RATES["decode"] * cores)
@@ -98,18 +99,20 @@ def _estimates(n, d, k, block, workers, cores, memory_per_worker, can_cache, cli
         t_direct = read + n * n * d / flops(RATES["syrk"]) + RATES["eigh_full"] * n**3 + 2.0 * n * d * k / flops(RATES["gemm"])
     else:
         t_direct = read + RATES["svd"] * n * d * d
-    # matrix-free: moments pass + applications, from cached blocks when they fit
-    cached = can_cache and decoded <= CACHE_SHARE * memory_per_worker * workers
+    # matrix-free: one read, then moments and applications from held rows when they fit
+    held = float(held_itemsize) * n * d
+    cached = can_cache and held <= CACHE_SHARE * memory_per_worker * workers
     apps = EXPECTED_APPLICATIONS
     product = 4.0 * n * d * block / flops(RATES["gemm"])
     basis = _DEPTH * block
     ritz = 4.0 * d * basis * basis / flops(RATES["gemm"]) + RATES["eigh_full"] * basis**3
-    t_mf = read + (read if cached else 0.0) + apps * (product + ritz + (0.0 if cached else read))
+    t_mf = read + apps * (product + ritz + (0.0 if cached else read))
     return {
         "decoded_bytes": int(decoded), "covariance_memory_bytes": int(cov_memory),
         "direct_memory_bytes": int(direct_memory), "memory_per_worker": int(memory_per_worker),
         "client_memory": int(client_memory), "covariance_fits": bool(cov_fits),
         "direct_fits": bool(direct_fits), "matrix_free_cached": bool(cached),
+        "held_bytes": int(held),
         "covariance_seconds": round(t_cov, 3), "direct_seconds": round(t_direct, 3),
         "matrix_free_seconds": round(t_mf, 3), "expected_applications": apps,
         "k": int(k), "block": int(block), "cores": int(cores), "rates": dict(RATES),
@@ -118,7 +121,8 @@ def _estimates(n, d, k, block, workers, cores, memory_per_worker, can_cache, cli
 
 def choose_method(requested: str, n: int, d: int, block: int, data_bytes: int,
                   memory_per_worker: int, workers: int, cores: int, *, k: int | None = None,
-                  can_cache: bool = True, client_memory: int | None = None) -> MethodChoice:
+                  can_cache: bool = True, client_memory: int | None = None,
+                  held_itemsize: int = 8) -> MethodChoice:
     """Pick ``covariance``, ``direct`` or ``matrix-free`` by estimated time within memory.
 
     Parameters
@@ -136,9 +140,11 @@ def choose_method(requested: str, n: int, d: int, block: int, data_bytes: int,
     k : int, optional
         Components wanted (default ``block - 8``).
     can_cache : bool
-        Whether decoded blocks can stay in worker memory (not with processes).
+        Whether rows can be held in worker memory (not with processes).
     client_memory : int, optional
         Memory the client may use for the direct method (default: one worker's).
+    held_itemsize : int
+        Bytes per value of held rows (4 when every feature is stored as float32).
 
     Returns
     -------
@@ -148,7 +154,8 @@ def choose_method(requested: str, n: int, d: int, block: int, data_bytes: int,
     """
     k = max(1, block - 8) if k is None else k
     client_memory = memory_per_worker if client_memory is None else client_memory
-    est = _estimates(n, d, k, block, workers, max(1, cores), memory_per_worker, can_cache, client_memory)
+    est = _estimates(n, d, k, block, workers, max(1, cores), memory_per_worker, can_cache, client_memory,
+                     held_itemsize)
     est["input_bytes"] = int(data_bytes)
     if requested != "auto":
         return MethodChoice(requested, f"model.method = {requested} in the config", est)
@@ -171,7 +178,7 @@ def choose_method(requested: str, n: int, d: int, block: int, data_bytes: int,
                         f"{client_memory / 2**20:.0f} MiB available")
     reason = f"{best} is estimated fastest (~{times[best]:.3g} s; {others or 'no other method fits'})"
     if best == "matrix-free":
-        reason += "; decoded blocks kept in memory" if est["matrix_free_cached"] else "; data re-read every pass"
+        reason += "; rows held in memory" if est["matrix_free_cached"] else "; data re-read every pass"
     if left_out:
         reason += "; " + "; ".join(left_out)
     return MethodChoice(best, reason, est)

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import dataclasses
 import logging
+import operator
 import os
 
 import numpy as np
@@ -98,8 +99,7 @@ class DataPasses:
         self.plan = plan
         self.runner = runner
         self.count = 0
-        self._cache = None
-        self._cache_transform = None
+        self._held = None  # the matrix-free method's raw rows in (worker) memory, one per task (hold)
         self._pieces = plan.pieces()
         self._inputs_token = tokenize(plan.inputs_record())  # once: thousands of files take a while to hash
         d = plan.n_features
@@ -129,11 +129,22 @@ class DataPasses:
         log.info("pass %d: %s, %d %s", self.count, what, n, unit)
 
     def moments(self, full: bool, missing: str, fill=None) -> Moments:
-        """One pass: per-task moments (batches folded in place) merged by Chan-Golub-LeVeque in a fixed tree."""
+        """One pass: per-task moments (batches folded in place) merged by Chan-Golub-LeVeque in a fixed tree.
+
+        From the rows held by :meth:`hold` when there are (no read).
+        """
         d = self.plan.n_features
+        bt = self.runner.blas_threads()
+        if self._held is not None:  # impute-mean's second moments: from the rows held, no read
+            name = self._name("moments-held", missing, fill)
+            parts = [delayed(tasks.rows_moments, pure=True)(x, self.held_spec, missing, fill,
+                                                            dask_key_name=f"{name}-{i}")
+                     for i, x in enumerate(self._held)]
+            self._announce("moments (held rows)", len(parts), "tasks")
+            (m,) = self.runner.compute([tree_reduce(parts, merge_into, name)], "moments")
+            return m
         layout = self.layout(8 * d * d if full else 8 * 6 * d)
         spec = self._spec(layout)
-        bt = self.runner.blas_threads()
         name = self._name("moments", full, missing, fill, layout.batch_rows)
         parts = [delayed(tasks.moments_task, pure=True)(_pieces(name, t), spec, full, missing, fill, bt,
                                                         dask_key_name=f"{name}-{t.index}")
@@ -143,32 +154,47 @@ class DataPasses:
         (m,) = self.runner.compute([tree_reduce(parts, merge_into, name)], "moments", in_flight=layout.in_flight)
         return m
 
-    def _decode_layout(self, transform: tasks.Transform, copies: int) -> Layout:
-        d = self.plan.n_features
-        return self.layout(8 * d * 4, cached=copies * 8 * self.plan.n_rows * d)
+    def held_bytes(self) -> int:
+        """Memory :meth:`hold` takes (every row, raw, in :attr:`Plan.held_itemsize`)."""
+        width = self.plan.n_features + (1 if self.plan.row_weight else 0)
+        return self.plan.held_itemsize * self.plan.n_rows * width
 
-    def cache(self, transform: tasks.Transform) -> bool:
-        """Decode every task's rows once and keep them in (worker) memory for later products.
+    def hold(self, missing: str) -> Moments | None:
+        """One read for the matrix-free method: every row kept in (worker) memory, and the moments of them all.
 
-        Returns False, and keeps nothing, when the decoded rows do not fit the
-        memory budget next to the product tasks.
+        Rows are held raw, in their stored precision (float32 when every
+        feature is stored so: :attr:`Plan.held_itemsize`), by
+        :func:`pcapipe.tasks.read_task`, which also folds their moments
+        exactly as the moments pass does; merged in the same fixed tree, they
+        are the moments pass's numbers.  Every later :meth:`product` (and
+        impute-mean's second :meth:`moments`) then reads no file.  Returns
+        None, and holds nothing, when the rows do not fit the memory budget
+        next to the product tasks.
         """
         try:
-            layout = self._decode_layout(transform, 1)
+            layout = self.layout(8 * self.plan.n_features * 4, cached=self.held_bytes())
         except InputError:
-            return False
-        self._cache = self.runner.persist(self._decode_graph(layout, transform), "decode")
-        self._cache_transform = transform
-        return True
-
-    def _decode_graph(self, layout: Layout, transform: tasks.Transform) -> list:
+            return None
+        self.held_spec = spec = self._spec(layout)
+        dtype = "float32" if self.plan.held_itemsize == 4 else "float64"
         bt = self.runner.blas_threads()
-        spec = self._spec(layout)
-        name = self._name("decoded", transform, layout.batch_rows)
-        self._announce("decode into memory", len(layout.tasks), "tasks")
-        return [delayed(tasks.decode_task, pure=True)(_pieces(name, t), spec, transform, bt,
-                                                      dask_key_name=f"{name}-{t.index}")
-                for t in layout.tasks]
+        name = self._name("held", missing, dtype, layout.batch_rows)
+        self._announce("read into memory, with moments", len(layout.tasks), "tasks")
+        log.info("memory: %s", layout.estimate.describe())
+        graph = [delayed(tasks.read_task, pure=True)(_pieces(name, t), spec, t.n_rows, missing, bt, dtype, "C",
+                                                     dask_key_name=f"{name}-{t.index}")
+                 for t in layout.tasks]
+        kept = self.runner.persist(graph, "read")
+        self._held = [delayed(operator.getitem, pure=True)(k, 0, dask_key_name=f"{name}-rows-{i}")
+                      for i, k in enumerate(kept)]
+        parts = [delayed(operator.getitem, pure=True)(k, 1, dask_key_name=f"{name}-moments-{i}")
+                 for i, k in enumerate(kept)]
+        (m,) = self.runner.compute([tree_reduce(parts, merge_into, f"{name}-merge")], "moments")
+        return m
+
+    @property
+    def held(self) -> bool:
+        return self._held is not None
 
     def _direct_layout(self) -> Layout:
         """Tasks of the direct method's one read; the memory estimate holds what it keeps.
@@ -239,16 +265,17 @@ class DataPasses:
         return out
 
     def release(self) -> None:
-        self._cache = None
+        self._held = None
 
     def product(self, transform: tasks.Transform, v: np.ndarray) -> np.ndarray:
         """One pass: ``sum_b Xb~^T (Xb~ V)``; from the cache when there is one."""
         bt = self.runner.blas_threads()
         name = self._name("product", transform, v)
         vd = delayed(v, pure=True, name=f"{name}-block")
-        if self._cache is not None and transform is self._cache_transform:
-            parts = [delayed(tasks.product_cached_task, pure=True)(x, vd, bt, dask_key_name=f"{name}-{i}")
-                     for i, x in enumerate(self._cache)]
+        if self._held is not None:
+            parts = [delayed(tasks.product_held_task, pure=True)(x, self.held_spec, transform, vd, bt,
+                                                                 dask_key_name=f"{name}-{i}")
+                     for i, x in enumerate(self._held)]
             in_flight = None
         else:
             layout = self.layout(2 * 8 * self.plan.n_features * v.shape[1])
@@ -257,7 +284,7 @@ class DataPasses:
                                                             dask_key_name=f"{name}-{t.index}")
                      for t in layout.tasks]
             in_flight = layout.in_flight
-        self._announce(f"operator on {v.shape[1]} vectors" + (" (cached blocks)" if self._cache else ""),
+        self._announce(f"operator on {v.shape[1]} vectors" + (" (held rows)" if self._held else ""),
                        len(parts), "tasks")
         (out,) = self.runner.compute([tree_reduce(parts, tasks.add, name)], "product", in_flight=in_flight)
         return out

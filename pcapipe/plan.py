@@ -89,6 +89,7 @@ class Plan:
     left_out: tuple[tuple[str, str], ...] = ()    # default selection: (column, why it is not a feature)
     row_ids: tuple[tuple[str, int, int, bool], ...] = ()  # (feature, min, max, proven) from the footers
     hints: tuple[str, ...] = ()          # guard-rail warnings from the footers (pcapipe check)
+    float32: bool = False                # every feature is stored as float32 (or float16): exact in float32
 
     @property
     def n_rows(self) -> int:
@@ -97,6 +98,11 @@ class Plan:
     @property
     def n_features(self) -> int:
         return len(self.features)
+
+    @property
+    def held_itemsize(self) -> int:
+        """Bytes per value of rows held in memory: float32 as stored when exact (and unweighted), else float64."""
+        return 4 if self.float32 and not self.row_weight else 8
 
     @property
     def total_bytes(self) -> int:
@@ -281,8 +287,8 @@ def make_plan(cfg: Config) -> Plan:
     scan = _Scan(cfg, paths, schema0, columns, length)
     files, blocks = scan.run(opened)
     features = feature_names_for(vec, length) if vec else columns
-    width = schema0.field(vec).type.value_type.bit_width if vec else \
-        max(schema0.field(c).type.bit_width for c in columns)
+    types = [schema0.field(vec).type.value_type] if vec else [schema0.field(c).type for c in columns]
+    width = max(t.bit_width for t in types)
     left_out = tuple(default_left_out(cfg, schema0, columns)) + scan.left_out()
     if left_out:
         log.info("input.features: %d column(s) left out of the default selection: %s", len(left_out),
@@ -293,7 +299,8 @@ def make_plan(cfg: Config) -> Plan:
         fw = read_feature_weights(resolve_path(cfg, cfg.model.feature_weights), features)
     return Plan(tuple(files), tuple(blocks), features, columns, vec, tuple(cfg.input.keep), max(width // 8, 1),
                 weight, fw, found.skipped, found.duplicates, left_out, scan.stats.row_ids(n_rows),
-                tuple(scan.stats.hints(n_rows, cfg.model.scale, paths[0])))
+                tuple(scan.stats.hints(n_rows, cfg.model.scale, paths[0])),
+                all(pa.types.is_floating(t) and t.bit_width <= 32 for t in types))
 
 
 class _Scan:

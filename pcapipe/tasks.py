@@ -18,8 +18,8 @@ from .moments import Accumulator, Moments
 from .monitor import MonitorSpec, monitor_columns
 from .reader import ReadSpec, iter_task, split_weights
 
-__all__ = ["Transform", "prepare_rows", "score_rows", "score_columns", "moments_task", "product_task", "scores_task", "decode_task",
-           "read_task", "rows_moments", "preprocess_into", "product_cached_task", "add", "limit_blas", "probe_task"]
+__all__ = ["Transform", "prepare_rows", "score_rows", "score_columns", "moments_task", "product_task", "scores_task",
+           "read_task", "rows_moments", "preprocess_into", "product_held_task", "add", "limit_blas", "probe_task"]
 
 _blas_limit = None
 
@@ -82,17 +82,22 @@ def moments_task(pieces, spec: ReadSpec, full: bool, missing: str, fill=None, bl
     return acc.result()
 
 
-def read_task(pieces, spec: ReadSpec, n_rows: int, missing: str, blas_threads: int = 0) -> tuple[np.ndarray, Moments]:
-    """A task's raw rows in one Fortran-ordered array, and their moments, from one read.
+def read_task(pieces, spec: ReadSpec, n_rows: int, missing: str, blas_threads: int = 0,
+              dtype: str = "float64", order: str = "F") -> tuple[np.ndarray, Moments]:
+    """A task's raw rows in one array, and their moments, from one read.
 
     The array holds the decoded values untransformed (and, with row weights,
     the weight column last); the moments are exactly those of
     :func:`moments_task` on the same task (the same batches folded in the
-    same order), so the direct method needs no separate moments pass.
+    same order), so neither the direct nor the matrix-free method needs a
+    separate moments pass.  ``dtype`` is float32 only when every feature is
+    stored as float32 (the copy is then exact, at half the memory): the
+    matrix-free method holds its rows so, C-ordered for its row slabs
+    (:func:`product_held_task`).
     """
     limit_blas(blas_threads)
     width = spec.n_features + (1 if spec.weight_column else 0)
-    out = np.empty((n_rows, width), order="F")
+    out = np.empty((n_rows, width), dtype=dtype, order=order)
     acc = Accumulator(spec.n_features, False, missing, None, weighted=bool(spec.weight_column))
     row = 0
     for xb in iter_task(pieces, spec):
@@ -112,7 +117,7 @@ def rows_moments(raw: np.ndarray, spec: ReadSpec, missing: str, fill: np.ndarray
     """
     acc = Accumulator(spec.n_features, False, missing, fill, weighted=bool(spec.weight_column))
     for i in range(0, raw.shape[0], spec.batch_rows):
-        acc.add(*split_weights(raw[i:i + spec.batch_rows].copy(order="F"), spec))
+        acc.add(*split_weights(np.array(raw[i:i + spec.batch_rows], dtype=np.float64, order="F"), spec))
     return acc.result()
 
 
@@ -122,7 +127,7 @@ def preprocess_into(raw: np.ndarray, spec: ReadSpec, t: Transform, out: np.ndarr
     ``(x - shift) * inv_scale`` in place (the arithmetic the reader fuses into
     its decode, so the values are the same bits), then the missing rule;
     weighted rows become ``sqrt(w) x`` and rows of weight 0 are left out (as
-    :func:`decode_task`).  When rows are left out they are copied into the
+    :func:`product_held_task`).  When rows are left out they are copied into the
     leading rows of ``out`` (which must have room); otherwise the result is
     a view of ``raw``.
     """
@@ -173,28 +178,31 @@ def product_task(pieces, spec: ReadSpec, t: Transform, v: np.ndarray, blas_threa
     return out
 
 
-def decode_task(pieces, spec: ReadSpec, t: Transform, blas_threads: int = 0) -> np.ndarray:
-    """A task's rows decoded and transformed (rows dropped for missing values left out), in one array.
+def _slabs(x: np.ndarray):
+    """Row slices of held rows of about 2 MiB of float64 each (cache-sized, whatever d)."""
+    step = max(16, (2 << 20) // (8 * max(1, x.shape[1])))
+    return (slice(r, r + step) for r in range(0, x.shape[0], step))
 
-    Weighted rows are kept as ``sqrt(w) x`` (rows of weight 0 left out), so
-    that the cached product ``X^T X V`` is the weighted one.
+
+def product_held_task(x: np.ndarray, spec: ReadSpec, t: Transform, v: np.ndarray, blas_threads: int = 0) -> np.ndarray:
+    """``X~^T (X~ V)`` of a task's raw rows held in memory (:func:`read_task`), one slab at a time.
+
+    Each slab is transformed in float64 (a float32 feature with mean 1e4
+    keeps its digits) into a fresh cache-sized array, then the missing rule
+    and the row weights apply as in :func:`product_task`.
     """
     limit_blas(blas_threads)
-    parts = []
-    for xb in iter_task(pieces, spec, t.shift, t.inv_scale):
-        x, w = _rows(xb, spec, t)
+    out = np.zeros((spec.n_features, v.shape[1]))
+    for rows in _slabs(x):
+        feats, w = split_weights(x[rows], spec)
+        xt = np.subtract(feats, t.shift, dtype=np.float64)
+        if t.inv_scale is not None:
+            xt *= t.inv_scale
+        xt, ok = prepare_rows(xt, t)
         if w is not None:
-            x = x[w > 0] * np.sqrt(w[w > 0])[:, None]
-        parts.append(x)
-    if len(parts) == 1:
-        return parts[0]
-    return np.concatenate(parts, axis=0) if parts else np.zeros((0, spec.n_features))
-
-
-def product_cached_task(x: np.ndarray, v: np.ndarray, blas_threads: int = 0) -> np.ndarray:
-    """``X~^T (X~ V)`` for a block already decoded in memory."""
-    limit_blas(blas_threads)
-    return _product(x, v)
+            w = np.array(w if ok is None else w[ok], dtype=np.float64)
+        out += _product(xt, v, w)
+    return out
 
 
 def add(a: np.ndarray, b: np.ndarray) -> np.ndarray:

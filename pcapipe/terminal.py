@@ -88,7 +88,8 @@ def check(config, overrides=()):
     block = min(d, k + cfg.model.oversample)
     choice = choose_method(cfg.model.method, n, d, block, plan.total_bytes, memory, workers, threads,
                            k=k, can_cache=cfg.compute.scheduler != "processes",
-                           client_memory=memory * (1 if cfg.compute.scheduler.startswith("tcp://") else workers))
+                           client_memory=memory * (1 if cfg.compute.scheduler.startswith("tcp://") else workers),
+                           held_itemsize=plan.held_itemsize)
     shared = cfg.compute.scheduler in ("threads", "synchronous")
     accumulator = 8 * d * d if choice.method == "covariance" else 2 * 8 * d * block
     # the direct method holds the raw rows (weight column too) and the stacked matrix (passes.read_once)

@@ -348,12 +348,12 @@ def long_job(tmp_path_factory):
 
 def _victim(cluster, when: str):
     """A worker that holds work of the run right now, or None."""
-    if when == "first pass":  # tasks of the moments pass assigned to it
+    # matrix-free: the first pass reads the rows into worker memory, kept there for every later pass
+    prefix = "pcapipe-held-"
+    if when == "first pass":  # tasks of the read assigned to it
         held = cluster.monitor.processing()
-        prefix = "pcapipe-moments-"
-    else:  # decoded blocks kept in its memory for the products
+    else:  # rows held in its memory for the moments and the products
         held = cluster.monitor.has_what()
-        prefix = "pcapipe-decoded-"
     for worker, keys in held.items():
         if any(str(k).startswith(prefix) for k in keys):
             return worker
@@ -363,7 +363,7 @@ def _victim(cluster, when: str):
 @pytest.mark.cluster
 @pytest.mark.parametrize("when", [
     "first pass",     # its queued and running tasks are lost
-    "cached blocks",  # decoded blocks in its memory are lost; dask recomputes them from the graph
+    "held rows",      # rows held in its memory are lost; dask recomputes them from the graph
 ])
 def test_worker_killed_mid_run_same_answer(doomed_cluster, long_job, tmp_path, when):
     glob, ref = long_job
@@ -390,7 +390,7 @@ def test_worker_killed_mid_run_same_answer(doomed_cluster, long_job, tmp_path, w
     assert running_at_kill, "the run ended before the worker was killed; the test proved nothing"
     assert "error" not in outcome, repr(outcome.get("error"))
     assert victim not in doomed_cluster.workers()
-    assert outcome["result"].manifest["blocks_cached"].startswith("decoded blocks kept")
+    assert outcome["result"].manifest["blocks_cached"].startswith("rows read once and held")
     _assert_same(outcome["result"], ref)
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import glob
+import logging
 import os
 
 import numpy as np
@@ -82,6 +83,26 @@ def test_float32_column_with_a_large_mean_is_centred_in_float64(tmp_path, rng):
     np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:3], values, rtol=1e-9)
     scores = res.scores().compute()[["PC1", "PC2", "PC3"]].to_numpy()
     np.testing.assert_allclose(np.abs(scores), np.abs(ref_c @ res.loadings.to_numpy()), rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize("vector", [None, "fixed"])
+def test_matrix_free_reads_the_files_once_and_holds_float32_as_stored(tmp_path, rng, caplog, vector):
+    """Held rows: one read of the files, float32 kept as stored, every later pass from memory, exact."""
+    x = (rng.standard_normal((3000, 12)) * np.linspace(3.0, 0.5, 12) + 1e4).astype(np.float32)
+    write_parquet(tmp_path / "d", x, files=3, row_group=500, vector=vector)
+    cfg = make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run",
+                      model={"components": 3, "method": "matrix-free", "tolerance": 1e-12},
+                      input={"vector_column": "emb"} if vector else {})
+    with caplog.at_level(logging.INFO, logger="pcapipe"):
+        res = pcapipe.run(cfg)
+    passes = [r.getMessage() for r in caplog.records if r.getMessage().startswith("pass ")]
+    assert "read into memory" in passes[0], passes
+    solver = [p for p in passes[1:] if "scores" not in p]  # the scores pass writes per input file
+    assert len(solver) >= 2 and all("held rows" in p for p in solver), passes
+    assert "float32 as stored" in res.manifest["blocks_cached"]
+    ref = np.cov(x.astype(np.float64), rowvar=False)  # numpy, float64, on the stored values
+    np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:3], np.linalg.eigvalsh(ref)[::-1][:3],
+                               rtol=1e-10)
 
 
 def test_fused_shift_of_float32_is_exact_in_float64(tmp_path, rng):

@@ -29,19 +29,20 @@ SOLVER = dict(tolerance=1e-12, max_iterations=500, oversample=8)
     "n, d, k, method, because",
     [
         (1_000_000, 256, 10, "covariance", "matrix-free ~"),  # tall: one Gram pass, 256 x 256 LAPACK
-        (100_000, 4096, 10, "matrix-free", "decoded blocks kept in memory"),  # embeddings, few components
+        (100_000, 4096, 10, "matrix-free", "rows held in memory"),  # embeddings, few components
         (100_000, 4096, 100, "covariance", "matrix-free ~"),  # a block of 108 costs more than the Gram
         (100_000, 4096, 256, "covariance", "matrix-free ~"),
         (500_000, 1024, 10, "covariance", "matrix-free ~"),   # d = 1024: the Gram is cheap
         (500_000, 1024, 100, "covariance", "matrix-free ~"),
         (500_000, 1024, 256, "covariance", "matrix-free ~"),
-        (50_000, 10_000, 10, "matrix-free", "decoded blocks kept in memory"),  # 10^4 scalar columns
+        (50_000, 10_000, 10, "matrix-free", "rows held in memory"),  # 10^4 scalar columns
         (64, 6830, 5, "direct", "covariance ~"),              # gene-expression-sized: n << d
         (200_000, 2000, 100, "covariance", "direct ~"),       # d = 2000, k = 100
     ],
 )
 def test_auto_picks_the_method_for_each_benchmark_shape(n, d, k, method, because):
-    choice = choose_method("auto", n, d, k + 8, n * d * 4, AUTO_WORKER, 2, 2, k=k, client_memory=2 * AUTO_WORKER)
+    choice = choose_method("auto", n, d, k + 8, n * d * 4, AUTO_WORKER, 2, 2, k=k, client_memory=2 * AUTO_WORKER,
+                           held_itemsize=4)
     assert choice.method == method, choice.reason
     assert choice.reason.startswith(f"{method} is estimated fastest") and because in choice.reason
     est = choice.estimates
