@@ -379,7 +379,7 @@ def test_workers_dying_exit_3_and_nothing_left(live_cluster, cluster_job, tmp_pa
     proc, _ = _start_on(live_cluster, cluster_job, tmp_path)
     try:
         victim = _wait_until(lambda: _victim(live_cluster, "first pass") or (proc.poll() is not None and "ended"),
-                             60, "a moments task on a worker", interval=0.005)
+                             60, "a read task on a worker", interval=0.005)
         assert victim != "ended", proc.stderr.read()
         live_cluster.kill_worker(victim)
         _, stderr = proc.communicate(timeout=120)
@@ -387,7 +387,7 @@ def test_workers_dying_exit_3_and_nothing_left(live_cluster, cluster_job, tmp_pa
         if proc.poll() is None:
             proc.kill()
     assert proc.returncode == 3, stderr
-    _assert_words(_one_error_line(stderr), ["moments pass failed", "worker(s) died while running its task pcapipe-moments-",
+    _assert_words(_one_error_line(stderr), ["moments pass failed", "worker(s) died while running its task pcapipe-held-",
                                             "running out of memory",
                                             "nothing was kept", "once the cluster is back"])
     assert sorted(os.listdir(tmp_path)) == ["cluster", "job.toml"]
