@@ -212,8 +212,8 @@ class Runner:
         """BLAS threads each task should set in its process; 0 means "do not touch"."""
         return self._backend.blas_threads()
 
-    def compute(self, objs, label: str, in_flight: int | None = None):
-        """Compute dask objects (a list), with a progress bar when asked for and useful.
+    def compute(self, objs, label: str, in_flight: int | None = None, quiet: bool = False):
+        """Compute dask objects (a list), with a progress bar when asked for and useful (not ``quiet``).
 
         ``in_flight`` (local ``threads`` scheduler only) runs at most that many
         tasks at once, each allowed ``cores // in_flight`` BLAS threads: the
@@ -225,7 +225,7 @@ class Runner:
             When workers keep dying on the same task, or the scheduler is lost.
         """
         log.debug("pass: %s", label)
-        show = self.cfg.progress and sys.stderr.isatty()
+        show = self.cfg.progress and sys.stderr.isatty() and not quiet
         if self.distributed:
             return self._backend.compute(list(objs), label, show)
         return self._backend.compute(list(objs), label, show, in_flight)

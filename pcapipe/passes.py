@@ -189,7 +189,8 @@ class DataPasses:
                       for i, k in enumerate(kept)]
         parts = [delayed(operator.getitem, pure=True)(k, 1, dask_key_name=f"{name}-moments-{i}")
                  for i, k in enumerate(kept)]
-        (m,) = self.runner.compute([tree_reduce(parts, merge_into, f"{name}-merge")], "moments")
+        # merging the small per-task moments is part of the read, not a pass of its own (no bar)
+        (m,) = self.runner.compute([tree_reduce(parts, merge_into, f"{name}-merge")], "moments", quiet=True)
         return m
 
     @property

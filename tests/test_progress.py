@@ -40,7 +40,7 @@ def test_a_shorter_redraw_leaves_nothing_of_the_longer_one():
     assert _screen(out.getvalue()) == [progress_line("product", 1.0, 0.004)]
 
 
-def test_every_pass_has_its_own_labelled_bar_including_the_decode_pass(tmp_path, monkeypatch):
+def test_every_pass_has_its_own_labelled_bar_including_the_read_into_memory(tmp_path, monkeypatch):
     x = known_spectrum(3000, 8, [5, 3, 2, 1, 0.5, 0.4, 0.3, 0.2], np.random.default_rng(1))
     write_parquet(tmp_path / "in", x, files=2, row_group=500)
     cfg = make_config(str(tmp_path / "in" / "*.parquet"), tmp_path / "run",
@@ -53,8 +53,8 @@ def test_every_pass_has_its_own_labelled_bar_including_the_decode_pass(tmp_path,
     assert all(_LINE.match(line) for line in bars), bars  # nothing left over after the time
     labels = [line.split()[0] for line in bars]
     m = res.manifest
-    assert m["blocks_cached"].startswith("decoded")
-    # one bar per pass: moments, decoding into memory, one per operator application, scores
-    assert labels == (["moments", "decode"] + ["product"] * m["solver"]["operator_applications"] + ["scores"])
+    assert m["blocks_cached"].startswith("rows read once")
+    # one bar per pass: the read into memory (with the moments), one per operator application, scores
+    assert labels == (["read"] + ["product"] * m["solver"]["operator_applications"] + ["scores"])
     assert len(labels) == m["passes_over_data"]
     assert all(line.split("]")[1].strip().startswith("100%") for line in bars)
