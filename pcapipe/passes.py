@@ -140,8 +140,9 @@ class DataPasses:
             parts = [delayed(tasks.rows_moments, pure=True)(x, self.held_spec, missing, fill,
                                                             dask_key_name=f"{name}-{i}")
                      for i, x in enumerate(self._held)]
-            self._announce("moments (held rows)", len(parts), "tasks")
-            (m,) = self.runner.compute([tree_reduce(parts, merge_into, name)], "moments")
+            # over memory, not the files: like the direct method's refill, not counted as a pass
+            log.info("moments again from the rows held in memory, %d tasks", len(parts))
+            (m,) = self.runner.compute([tree_reduce(parts, merge_into, name)], "moments", quiet=True)
             return m
         layout = self.layout(8 * d * d if full else 8 * 6 * d)
         spec = self._spec(layout)

@@ -255,7 +255,9 @@ def _convergence(ctx: FigureContext):
     if not history:
         return "no convergence figure: the method found the eigenvalues without iterating (no residual history)"
     first = first_solver_pass(ctx.manifest)
-    before = "pass 1: moments" + (", pass 2: decoding the blocks into worker memory" if first == 3 else "")
+    held = str(ctx.manifest.get("blocks_cached", "")).startswith("rows read once")
+    before = ("pass 1: the rows read into worker memory, with their moments" if held else "pass 1: moments") + (
+        ", pass 2: the moments again with the imputed means" if first == 3 else "")
     axis = (f"per pass over the data ({before})" if first
             else "per iteration on the in-memory matrix (built in the single pass over the data)")
     return (fig_convergence(history, solver.get("tolerance"), first_pass=first),

@@ -222,7 +222,7 @@ def test_direct_reads_the_data_once_and_agrees_with_covariance_and_numpy(tmp_pat
     w = rng.integers(0, 4, x.shape[0]).astype(float) if weighted else None
     write_parquet(tmp_path / "d", x, files=files, row_group=row_group, keep={"w": w} if weighted else None)
     runs = {}
-    for method in ("direct", "covariance"):
+    for method in ("direct", "covariance", "matrix-free"):
         runs[method] = pcapipe.run(make_config(
             str(tmp_path / "d" / "*.parquet"), tmp_path / method, model={"components": 3, "method": method},
             input={"missing": missing, **({"row_weight": "w"} if weighted else {})},
@@ -231,7 +231,13 @@ def test_direct_reads_the_data_once_and_agrees_with_covariance_and_numpy(tmp_pat
     # one pass over the data (the old code read twice: moments, then the rows; three times for impute-mean)
     assert direct.manifest["passes_over_data"] == 1
     assert cov.manifest["passes_over_data"] == (2 if missing == "impute-mean" else 1)
+    # matrix-free: the rows are read once into memory, every product (and impute-mean's refill) from there
+    mf = runs["matrix-free"]
+    assert mf.manifest["blocks_cached"].startswith("rows read once")
+    assert mf.manifest["passes_over_data"] == 1 + mf.manifest["solver"]["operator_applications"]
+    np.testing.assert_allclose(mf.features["mean"], cov.features["mean"], rtol=1e-12)
     ref = np.linalg.eigvalsh(_numpy_cov(x, missing, w))[::-1]  # numpy
+    np.testing.assert_allclose(mf.spectrum["eigenvalue"].to_numpy()[:3], ref[:3], rtol=1e-9)
     for res in (direct, cov):
         np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:7], ref, rtol=1e-9)
     np.testing.assert_allclose(direct.loadings, cov.loadings, rtol=0, atol=1e-9)

@@ -271,13 +271,13 @@ def test_convergence_draws_the_residual_history(wide):
     assert history.shape[0] >= 3 and ax.get_yscale() == "log"
     lines = [line for line in ax.lines if line.get_label().startswith("PC")]
     assert [line.get_label() for line in lines] == ["PC1", "PC2", "PC3"]
-    # x = pass over the data: moments (1), decode into memory (2), then one pass per operator application
+    # x = pass over the data: the read into memory with the moments (1), then one per operator application
     m = wide.manifest
-    assert m["blocks_cached"].startswith("decoded") and not m["scores"]["written"]
-    assert m["passes_over_data"] == 2 + m["solver"]["operator_applications"]
+    assert m["blocks_cached"].startswith("rows read once") and not m["scores"]["written"]
+    assert m["passes_over_data"] == 1 + m["solver"]["operator_applications"]
     assert ax.get_xlabel() == "pass over the data"
     for i, line in enumerate(lines):
-        np.testing.assert_array_equal(line.get_xdata(), np.arange(3, history.shape[0] + 3))
+        np.testing.assert_array_equal(line.get_xdata(), np.arange(2, history.shape[0] + 2))
         np.testing.assert_array_equal(line.get_ydata(), history[:, i])
     tol = next(line for line in ax.lines if line.get_gid() == "tolerance")
     assert list(tol.get_ydata()) == [wide.manifest["solver"]["tolerance"]] * 2

@@ -160,7 +160,7 @@ class Bench:
                                       "gap": float(comp["gap"][i])} for i in bad],
                      "warnings": res.stderr.count("did not reach tolerance"),
                      "n_rows": n_rows or case.n}
-        row.note = "cached" if man["blocks_cached"].startswith("decoded") else ""
+        row.note = "held" if man["blocks_cached"].startswith("rows read once") else ""
         if bad.size:
             worst = max(row.extra["unconverged"], key=lambda u: u["relative_residual"])
             row.note += (f" max rel. residual {worst['relative_residual']:.1e}, gap {worst['gap']:.1e}; "
