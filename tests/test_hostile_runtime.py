@@ -459,6 +459,9 @@ def test_resume_command_after_ctrl_c_keeps_the_overrides(cluster_job, tmp_path):
     """The printed command alone continues the run: --set model.components=3 is stored with the checkpoint."""
     root, cfg, ref = cluster_job
     before = _digests(root / "data")
+    # 64 MiB x 2 is too little to hold the rows, so every pass re-reads the files and the run
+    # lasts long enough after its first checkpoint for the interrupt to land mid-run
+    cfg = {**cfg, "compute": {**cfg["compute"], "memory_limit": "64MiB"}}
     config = write_toml(tmp_path / "job.toml", cfg)  # its own output.directory is another one
     out = tmp_path / "elsewhere"
     proc = subprocess.Popen([sys.executable, "-m", "pcapipe", "run", config, "--set", f"output.directory={out}",
@@ -480,6 +483,7 @@ def test_resume_command_after_ctrl_c_keeps_the_overrides(cluster_job, tmp_path):
     assert r.returncode == 0, r.stderr
     res = pcapipe.load(out)
     assert res.manifest["resumed"] and res.loadings.shape[1] == 3
+    assert res.manifest["blocks_cached"].startswith("re-read"), res.manifest["blocks_cached"]
     np.testing.assert_allclose(res.spectrum["eigenvalue"].to_numpy()[:3], ref.spectrum["eigenvalue"].to_numpy()[:3],
                                rtol=1e-10)
     assert sorted(os.listdir(tmp_path)) == ["elsewhere", "job.toml"]
