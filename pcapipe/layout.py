@@ -11,6 +11,10 @@ read:
 * how many tasks run at once (``in_flight``) and how many threads each task
   uses for decoding and BLAS (``threads``), so that a file with one huge
   row group still keeps every core busy;
+* which row groups are decoded whole by column slices (``sliced_bytes``)
+  rather than streamed; at ``memory_limit = "auto"`` (half the machine's
+  memory) the tasks in flight hold at most ``AUTO_WORKING_SET``, which is
+  where a larger working set stopped paying off;
 * the memory this costs, as a :class:`MemoryEstimate` that ``pcapipe check``
   prints and that refuses a layout which cannot fit.
 
@@ -26,7 +30,8 @@ last term is the 64 KiB read buffer; pages of at most
 1 MiB are what pyarrow, polars and DuckDB write by default); a row group read
 whole costs about ``4.5x`` its uncompressed bytes (the Arrow table, the pages
 and the allocator's slack: 1M x 256 float64 in 32k-row groups, two tasks,
-peak 764 MB); the decoded batch costs
+peak 764 MB); one decoded by column slices costs its float64 block plus
+``4.5x`` one slice per decoding thread; the decoded batch costs
 twice its float64 bytes (the Arrow batch and the float64 buffer; with row
 weights one more column, plus the fold's copy of the rows of positive weight);
 the covariance accumulator ``8 d^2``.  The run's peak is then at most
@@ -42,7 +47,7 @@ from .config import format_size
 from .errors import InputError
 
 __all__ = ["Piece", "Task", "MemoryEstimate", "Layout", "footer_costs", "leaf_columns", "layout_for", "FIXED_OVERHEAD",
-           "WHOLE_ROW_GROUP_BYTES", "SLICE_BYTES", "SLICED_MIN_FEATURES"]
+           "WHOLE_ROW_GROUP_BYTES", "SLICE_BYTES", "AUTO_WORKING_SET"]
 
 # Peak RSS of a process that imported what `pcapipe run` imports (136 MiB measured,
 # numpy 2.4 / pyarrow 26 / dask 2026.8 / scipy 1.17) plus room for the allocators'
@@ -52,14 +57,20 @@ FIXED_OVERHEAD = 256 << 20
 # A row group up to this size (uncompressed, feature columns) may be read in one
 # call and sliced: ~2.5x faster than the streaming reader on wide tables.
 WHOLE_ROW_GROUP_BYTES = 64 << 20
-# Wide tables (at least this many scalar features): a row group too large to read in one call
-# is decoded whole-height, a slice of SLICE_BYTES (float64) of columns per pyarrow read, when the
-# decoded block takes at most half of a task's memory and the run still fits the budget.  Streaming it in batches costs
-# pyarrow a fixed price per column and batch: 10k x 10,000 float32, one thread, 2.0 s streamed
-# in 838-row batches vs 0.64 s by slices (DEVELOPERS.md, "Benchmarks").  Narrower tables keep
-# the streaming reader, whose batches bound their memory.
-SLICED_MIN_FEATURES = 1024
-SLICE_BYTES = 16 << 20
+# A row group of scalar features is decoded whole-height, a slice of SLICE_BYTES (float64) of
+# columns per pyarrow read, when the decoded block takes at most half of a task's memory and the
+# run still fits the budget; else streamed in batches.  Streaming costs pyarrow a fixed price per
+# column and batch and ~1-2.6 MB of buffers per column: 10k x 10,000 float32, one thread, 2.0 s
+# streamed in 838-row batches vs 0.64 s by slices; one 100k x 256 float64 row group 0.21-0.25 s
+# and 290 MB by 16 MiB slices vs 0.37-0.66 s and 522 MB streamed vs 1.1-2.2 s and 876 MB read in
+# one call (peak over an idle interpreter; DEVELOPERS.md, "Memory").  Slices of 4 MiB hold less
+# than 16 MiB ones and are no slower: 124,576 x 256 float64, 270 vs 340 MB, 0.17 vs 0.18 s;
+# 10k x 10,000 float32, 795 vs 840 MB, 0.70 vs 1.45 s (one thread, warm cache).
+SLICE_BYTES = 4 << 20
+# At memory_limit = "auto" the budget is half the machine's memory; the tasks in flight then hold
+# at most this much (a block up to it decoded by slices; fewer tasks, each with more threads):
+# one task on two threads read the tall layouts as fast as two tasks (DEVELOPERS.md, "Layouts").
+AUTO_WORKING_SET = 384 << 20
 # pyarrow / polars / DuckDB default data page size (at most): the streaming
 # reader holds about one page per column.
 _PAGE_BYTES = 1 << 20
@@ -221,7 +232,7 @@ def _group(pieces, target_rows: int, whole: int) -> tuple[Task, ...]:
 
 
 def _is_sliced(p: Piece, d: int, whole: int, sliced: int) -> bool:
-    return p.nbytes > whole and 8 * p.n_rows * d <= sliced
+    return 8 * p.n_rows * d <= sliced
 
 
 def _task_bytes(task: Task, batch_rows: int, d: int, whole: int, sliced: int = 0,
@@ -253,7 +264,7 @@ def _fits(estimate: MemoryEstimate, shared: bool, memory_per_worker: int) -> boo
 
 
 def _sized(tasks, d, batch_rows, whole, sliced, workers, cores, shared, budget, accumulator,
-           cached, weighted=False) -> tuple[MemoryEstimate, int]:
+           cached, weighted=False, working_set=None) -> tuple[MemoryEstimate, int]:
     """The memory estimate of running ``tasks`` (as many at once as fit), and the costliest task's index."""
     # a lone task in a shared process decodes its slices on up to every core
     costs = [_task_bytes(t, batch_rows, d, whole, sliced, cores if shared else 1, weighted)
@@ -264,14 +275,16 @@ def _sized(tasks, d, batch_rows, whole, sliced, workers, cores, shared, budget, 
     held = accumulator * (2 + math.ceil(math.log2(max(1, len(tasks)))))
     in_flight = max(1, min(workers, len(tasks)))
     if shared:
-        while in_flight > 1 and in_flight * task + held + cached > budget:
+        while in_flight > 1 and (in_flight * task + held + cached > budget
+                                 or (working_set and in_flight * task > working_set)):
             in_flight -= 1
     return MemoryEstimate(reader, batch, accumulator, task, in_flight, held, cached,
                           in_flight * task + held + cached, budget, FIXED_OVERHEAD), worst
 
 
 def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: int, shared: bool,
-               accumulator: int = 0, cached: int = 0, weighted: bool = False) -> Layout:
+               accumulator: int = 0, cached: int = 0, weighted: bool = False, sliceable: bool = True,
+               working_set: int | None = None) -> Layout:
     """Group ``pieces`` into tasks and size batches and concurrency to the budget.
 
     Parameters
@@ -294,6 +307,12 @@ def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: i
     weighted : bool
         Rows carry weights (``input.row_weight``): a wider batch and its copy;
         the reader streams such row groups rather than decoding them by slices.
+    sliceable : bool
+        False for a vector column: streamed, never decoded by column slices.
+    working_set : int, optional
+        ``AUTO_WORKING_SET`` at ``memory_limit = "auto"``: the tasks in flight
+        hold at most this much (at least one task runs), and blocks up to it
+        are sliced.
 
     Raises
     ------
@@ -310,16 +329,19 @@ def layout_for(pieces, d: int, *, workers: int, memory_per_worker: int, cores: i
     if accumulator:  # each task adds a d x d partial and a merge: give it at least 8 d rows of work
         target = max(target, 8 * d)
     tasks = _group(pieces, target, whole)
-    # wide row groups decoded whole by slices when that fits the budget, else streamed
-    sliced = per_task_memory // 2 if d >= SLICED_MIN_FEATURES and not weighted else 0
+    # row groups decoded whole by slices when that fits the budget, else streamed; the limit is
+    # per worker, never per run, so that every scheduler cuts the same batches (same result)
+    sliced = per_task_memory // 2 if sliceable and not weighted else 0
+    if working_set:
+        sliced = min(sliced, working_set)
     if not any(_is_sliced(p, d, whole, sliced) for t in tasks for p in t.pieces):
         sliced = 0
     estimate, worst = _sized(tasks, d, batch_rows, whole, sliced, workers, cores, shared, budget, accumulator,
-                             cached, weighted)
+                             cached, weighted, working_set)
     if sliced and not _fits(estimate, shared, memory_per_worker):
         sliced = 0
         estimate, worst = _sized(tasks, d, batch_rows, whole, 0, workers, cores, shared, budget, accumulator,
-                                 cached, weighted)
+                                 cached, weighted, working_set)
     if not _fits(estimate, shared, memory_per_worker):
         where = tasks[worst].pieces[0].path if tasks else "input"
         raise InputError(

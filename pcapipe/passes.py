@@ -25,7 +25,8 @@ from dask.base import tokenize
 from . import tasks
 from .compute import cores as _cores
 from .errors import InputError
-from .layout import Layout, layout_for
+from .config import parse_memory
+from .layout import AUTO_WORKING_SET, Layout, layout_for
 from .moments import Moments, merge_into, tree_merge
 from .plan import Plan
 from .reader import ReadSpec
@@ -111,9 +112,12 @@ class DataPasses:
         info = self.runner.info
         shared = info.scheduler in ("threads", "synchronous")
         cores = min(_cores(), self.runner.parallelism) if not self.runner.distributed else 1
+        auto = parse_memory(self.runner.cfg.memory_limit) is None
         return layout_for(self._pieces, self.plan.n_features, workers=info.workers,
                           memory_per_worker=info.memory_per_worker, cores=max(1, cores), shared=shared,
-                          accumulator=accumulator, cached=cached, weighted=bool(self.plan.row_weight))
+                          accumulator=accumulator, cached=cached, weighted=bool(self.plan.row_weight),
+                          sliceable=not self.plan.vector_column,
+                          working_set=AUTO_WORKING_SET if auto else None)
 
     def _spec(self, layout: Layout) -> ReadSpec:
         p = self.plan

@@ -55,11 +55,12 @@ def one_line(e: BaseException) -> str:
 class ReadSpec:
     """What to decode: the feature columns, how wide, and how many rows at a time.
 
-    ``threads`` > 1 decodes a streamed row group column-parallel; row groups
-    up to ``whole_bytes`` (uncompressed) are read in one call and sliced;
-    larger row groups of scalar columns whose decoded float64 block takes at
-    most ``sliced_bytes`` are decoded whole, a slice of columns per read
-    (:func:`iter_block`; 0: never).
+    ``threads`` > 1 decodes a streamed row group column-parallel; a row
+    group of scalar columns whose decoded float64 block takes at most
+    ``sliced_bytes`` is decoded whole, a slice of columns per read
+    (:func:`iter_block`; 0: never); other row groups up to ``whole_bytes``
+    (uncompressed) are read in one call and cut into batches, larger ones
+    streamed.
 
     With a ``weight_column`` the decoded batch has ``n_features + 1`` columns,
     the last holding the row weights (checked finite and >= 0, never
@@ -321,9 +322,9 @@ def _sliced_block(path: str, row_group: int, n_rows: int, spec: ReadSpec, shift,
     return out
 
 
-def _sliced(rg_meta, spec: ReadSpec, with_keep: bool) -> bool:
-    """Whether a (large) row group is decoded whole, by column slices (see :class:`ReadSpec`)."""
-    return (not (with_keep or spec.vector_column or spec.weight_column)
+def _sliced(rg_meta, spec: ReadSpec) -> bool:
+    """Whether a row group is decoded whole, by column slices (see :class:`ReadSpec`)."""
+    return (not (spec.vector_column or spec.weight_column)
             and 8 * rg_meta.num_rows * spec.n_features <= spec.sliced_bytes)
 
 
@@ -333,10 +334,11 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
     """Stream one row group as decoded batches.
 
     ``whole`` reads the row group in one call whatever its size (for a caller
-    that keeps the whole decoded block anyway); otherwise only row groups up
-    to ``spec.whole_bytes`` are; larger ones are decoded whole by column
-    slices when ``spec.sliced_bytes`` allows, else streamed (column-parallel
-    when ``spec.threads`` > 1 and there are no keep columns to carry).
+    that keeps the whole decoded block anyway); otherwise a row group is
+    decoded whole by column slices when ``spec.sliced_bytes`` allows (one
+    batch, the keep columns beside it), else read in one call up to
+    ``spec.whole_bytes``, else streamed (column-parallel when
+    ``spec.threads`` > 1 and there are no keep columns to carry).
 
     Yields ``(x, keep_batch)`` where ``keep_batch`` holds the keep columns
     when ``with_keep`` is true (else None).  ``pf`` is the file already
@@ -356,8 +358,10 @@ def iter_block(path: str, row_group: int, spec: ReadSpec, shift=None, inv_scale=
         named = spec.vector_column or spec.weight_column
         row = _row_group_starts(path, os.stat(path).st_mtime_ns)[row_group] if named else 0
         meta = pf.metadata.row_group(row_group)
-        if not whole and meta.total_byte_size > spec.whole_bytes and _sliced(meta, spec, with_keep):
-            yield _sliced_block(path, row_group, meta.num_rows, spec, shift, inv_scale), None
+        if not whole and _sliced(meta, spec):
+            x = _sliced_block(path, row_group, meta.num_rows, spec, shift, inv_scale)
+            # keep columns (identifiers, a time) are few: read in one call beside the block
+            yield x, pf.read_row_group(row_group, columns=list(spec.keep)) if with_keep else None
             return
         if whole or meta.total_byte_size <= spec.whole_bytes:
             table = pf.read_row_group(row_group, columns=columns, use_threads=spec.threads > 1)

@@ -16,7 +16,7 @@ import pcapipe
 from pcapipe.compute import Runner
 from pcapipe.config import ComputeConfig
 from pcapipe.errors import InputError
-from pcapipe.layout import Piece, layout_for
+from pcapipe.layout import AUTO_WORKING_SET, Piece, layout_for
 from pcapipe.moments import Accumulator
 from pcapipe.passes import DataPasses
 from pcapipe.plan import make_plan
@@ -264,9 +264,13 @@ def test_wide_row_groups_are_sliced_only_when_the_block_fits_the_budget():
     crowded = layout_for(pieces, 2000, workers=1, memory_per_worker=1600 << 20, cores=2, shared=True,
                          accumulator=8 * 2000 * 2000, cached=700 << 20)
     assert crowded.sliced_bytes == 0 and crowded.estimate.fits()
-    narrow = layout_for([Piece(0, "a", 0, 400_000, 400 << 20, 3 << 20)], 256, workers=2,
-                        memory_per_worker=6 << 30, cores=2, shared=True)
-    assert narrow.sliced_bytes == 0  # narrow tables keep the streaming reader
+    # narrow tables too (faster and leaner than streaming, DEVELOPERS.md "Layouts"), but not a vector
+    # column or row weights; at memory_limit = "auto" a block over half the working set is streamed
+    narrow = [Piece(0, "a", 0, 400_000, 400 << 20, 3 << 20)]
+    kw = dict(workers=2, memory_per_worker=6 << 30, cores=2, shared=True)
+    assert layout_for(narrow, 256, **kw).sliced_bytes == (6 << 30) // 2
+    assert layout_for(narrow, 256, sliceable=False, **kw).sliced_bytes == 0
+    assert layout_for(narrow, 256, working_set=AUTO_WORKING_SET, **kw).sliced_bytes == 0
 
 
 def test_a_wide_one_row_group_run_is_exact_and_scheduler_independent(tmp_path, monkeypatch):
@@ -309,3 +313,35 @@ def test_row_weights_count_in_the_estimate(tmp_path, rng):
     # the decoded batch (Arrow + float64, one more column) and the copy of its rows of positive weight
     assert a.batch == 2 * 8 * rows * 6 and b.batch == 2 * 8 * rows * 7 + 8 * rows * 6
     assert b.total > a.total
+
+
+def test_auto_decodes_by_slices_within_the_working_set():
+    d = 256
+    acc = 8 * d * d
+    kw = dict(workers=2, memory_per_worker=6 << 30, cores=2, shared=True, accumulator=acc)
+    # ten files of one 100k-row group (what pandas/pyarrow write for files this size): streaming
+    # one holds ~2.1 MB of pyarrow buffers per column (540 MiB), its decoded block is 205 MB
+    files = [Piece(i, f"p{i}", 0, 100_000, 8 * 100_000 * d, 540 << 20) for i in range(10)]
+    auto = layout_for(files, d, working_set=AUTO_WORKING_SET, **kw)
+    assert auto.sliced_bytes >= 8 * 100_000 * d and auto.estimate.reader < (200 << 20)
+    assert (auto.in_flight, auto.threads) == (1, 2)  # one task on both cores, not two at 2 x 350 MB
+    assert auto.estimate.in_flight * auto.estimate.task <= AUTO_WORKING_SET
+    # 32k-row groups of 64 MiB: read whole they cost 4.5x their bytes; by slices two fit the working set
+    groups = [Piece(i // 4, f"q{i // 4}", i % 4, 32_768, 8 * 32_768 * d, 260 << 20) for i in range(12)]
+    auto = layout_for(groups, d, working_set=AUTO_WORKING_SET, **kw)
+    assert auto.sliced_bytes and auto.in_flight == 2
+    assert auto.estimate.in_flight * auto.estimate.task <= AUTO_WORKING_SET
+    # one file with pyarrow's default 1Mi-row groups: 2 GiB decoded, streamed
+    huge = [Piece(0, "h", 0, 1 << 20, 8 * d << 20, 670 << 20)]
+    auto = layout_for(huge, d, working_set=AUTO_WORKING_SET, **kw)
+    assert auto.sliced_bytes == 0 and auto.estimate.reader == 670 << 20
+
+
+def test_sliced_row_group_carries_its_keep_columns(tmp_path, rng):
+    x = rng.standard_normal((3000, 5))
+    (path,) = write_parquet(tmp_path, x, keep={"id": np.arange(3000), "tag": np.array(["a", "b", "c"] * 1000)})
+    columns = tuple(f"f{j}" for j in range(5))
+    spec = ReadSpec(columns, "", 5, 700, keep=("id", "tag"), sliced_bytes=1 << 30)
+    ((block, kept),) = list(iter_block(path, 0, spec, with_keep=True))  # one block, the keep columns beside
+    np.testing.assert_array_equal(block, x)
+    assert kept.column("id").to_pylist() == list(range(3000)) and kept.column("tag").to_pylist()[:4] == list("abca")

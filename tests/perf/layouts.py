@@ -169,7 +169,11 @@ def _config(path: str, data: str, out: str, vector: bool, memory: str, workers: 
 
 
 def _run(label: str, argv, env, logs: str, timeout: float, rows: list, case: str, layout: str) -> dict:
-    r = measure.run_child(argv, env, os.path.join(logs, f"{case}-{layout}-{label}".replace(" ", "_")), timeout)
+    # `python -m pcapipe` imports pcapipe from the working directory before PYTHONPATH: run the
+    # child in the checkout measured, or --code would measure whatever checkout we started in
+    code = env["PYTHONPATH"].split(os.pathsep)[0]
+    r = measure.run_child(argv, env, os.path.join(logs, f"{case}-{layout}-{label}".replace(" ", "_")), timeout,
+                          cwd=code)
     status = "ok" if r.returncode == 0 else ("timeout" if r.timed_out else f"exit {r.returncode}")
     if r.returncode != 0:
         status += ": " + (r.stderr.strip().splitlines() or [""])[-1][:160]
@@ -181,12 +185,13 @@ def _run(label: str, argv, env, logs: str, timeout: float, rows: list, case: str
     return row
 
 
-def _bench_layout(case, layout, paths_glob, d, vector, env, scratch, rows, timeout, scores=False):
+def _bench_layout(case, layout, paths_glob, d, vector, env, scratch, rows, timeout, scores=False, no_floor=False):
     logs = os.path.join(scratch, "logs")
     os.makedirs(logs, exist_ok=True)
     files = sorted(__import__("glob").glob(paths_glob))
-    floor = _run("floor: read+decode+Gram", [sys.executable, "-c", _FLOOR, d, int(vector), *files], env, logs,
-                 timeout, rows, case, layout)
+    floor = {"status": "skipped"} if no_floor else \
+        _run("floor: read+decode+Gram", [sys.executable, "-c", _FLOOR, d, int(vector), *files], env, logs,
+             timeout, rows, case, layout)
     runs = [("auto", 0, False), ("256MiB", 2, False)] + ([("auto", 0, True)] if scores else [])
     for memory, workers, with_scores in runs:
         tag = f"{memory}{'-scores' if with_scores else ''}"
@@ -225,6 +230,7 @@ def main(argv=None) -> int:
     ap.add_argument("--timeout", type=float, default=1800)
     ap.add_argument("--generate-only", action="store_true", help="write the data, run nothing")
     ap.add_argument("--scores", action="store_true", help="also run `auto` with scores (small files only)")
+    ap.add_argument("--no-floor", action="store_true", help="pcapipe only (a before/after comparison)")
     args = ap.parse_args(argv)
     scale = 10 if args.quick else 1
     root = os.path.join(args.scratch, "quick" if args.quick else "full")
@@ -239,7 +245,7 @@ def main(argv=None) -> int:
                 continue
             for layout in ("files-many", "files-ten"):
                 _bench_layout(case, layout, os.path.join(root, "small", layout, "*.parquet"), 64, False, env,
-                              args.scratch, rows, args.timeout, scores=args.scores)
+                              args.scratch, rows, args.timeout, scores=args.scores, no_floor=args.no_floor)
             continue
         n, d, dtype, vector = SHAPES[case]
         _generate(root, case, n // scale, d, dtype, vector, print)
@@ -247,7 +253,7 @@ def main(argv=None) -> int:
             continue
         for layout in args.layouts.split(","):
             _bench_layout(case, layout, os.path.join(root, case, layout, "*.parquet"), d, vector, env,
-                          args.scratch, rows, args.timeout)
+                          args.scratch, rows, args.timeout, no_floor=args.no_floor)
     text = _table_md(rows)
     print(text)
     out = os.path.join(HERE, "results")
