@@ -110,7 +110,9 @@ def check(config, overrides=()):
         f"method      {choice.method}: {choice.reason}",
         f"compute     {cfg.compute.scheduler}, {compute_text}",
         f"memory      {layout.estimate.describe()}; {len(layout.tasks)} task(s), batches of "
-        f"{layout.batch_rows} rows, {layout.in_flight} at once x {layout.threads} thread(s)",
+        f"{layout.batch_rows} rows, {layout.in_flight} at once x {layout.threads} thread(s)"
+        + (f"; wide row groups decoded whole by column slices (blocks up to {format_size(layout.sliced_bytes)})"
+           if layout.sliced_bytes else ""),
         f"output      {p.writer.directory}",
         *_feature_notes(plan),
         "ok: nothing was written" if error is None else verdict,

@@ -286,6 +286,9 @@ def test_a_wide_one_row_group_run_is_exact_and_scheduler_independent(tmp_path, m
     ref = pcapipe.run(make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "ref", **cfg,
                                   compute={"scheduler": "synchronous", "memory_limit": "256MiB"}))
     assert calls == [0]  # the one pass read its one row group by slices (one reader thread)
+    text = check_report(make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "chk", **cfg,
+                                    compute={"scheduler": "synchronous", "memory_limit": "256MiB"}))
+    assert "decoded whole by column slices" in text  # check says how the row group will be read
     # threads: the lone task reads alternate slices on two threads
     res = pcapipe.run(make_config(str(tmp_path / "d" / "*.parquet"), tmp_path / "run", **cfg,
                                   compute={"scheduler": "threads", "workers": 2, "memory_limit": "256MiB"}))
