@@ -254,7 +254,7 @@ def _stages(man: dict) -> str:
     return ", ".join(f"{k.split('_')[0]} {t[k]:.1f}" for k in keys if t.get(k))
 
 
-def _wide_d(run: "Runner", me: list, paths: list, base: str, k: int) -> None:
+def _wide_d(run: "Runner", me: list, paths: list, base: str, k: int, only: str = "") -> None:
     """50k x 10,000 scalar columns: the covariance floor, auto and each method, two budgets."""
     from pcapipe.layout import FIXED_OVERHEAD
 
@@ -270,6 +270,8 @@ def _wide_d(run: "Runner", me: list, paths: list, base: str, k: int) -> None:
             ("direct", "direct", {}), ("auto 2GiB x 2", "auto", {"memory_limit": "2GiB", "workers": 2}),
             ("covariance 2GiB x 2", "covariance", {"memory_limit": "2GiB", "workers": 2})]
     for label, method, compute in runs:
+        if only and label not in only.split(","):
+            continue
         res, man, values = run.pcapipe("wide-d-" + label.replace(" ", "-"), paths, False, k, method, **compute)
         info = man.get("compute", {})
         budget = info.get("workers", 0) * info.get("memory_per_worker", 0)
@@ -290,6 +292,7 @@ def main(argv=None) -> int:
     ap.add_argument("--scratch", default=os.path.join(tempfile.gettempdir(), "pcapipe-methods-bench"))
     ap.add_argument("--code", default=REPO, help="the pcapipe checkout the contenders import")
     ap.add_argument("--timeout", type=float, default=1800.0, help="seconds per contender")
+    ap.add_argument("--wide-runs", default="", help="wide-d: only these pcapipe runs, e.g. 'auto,auto 2GiB x 2'")
     args = ap.parse_args(argv)
     os.makedirs(os.path.join(args.scratch, "runs"), exist_ok=True)
     sys.path.insert(0, os.path.join(REPO, "tests"))
@@ -306,7 +309,7 @@ def main(argv=None) -> int:
             continue
         paths, base = _write(args.scratch, case)
         if case == "wide-d":
-            _wide_d(run, me, paths, base, 10)
+            _wide_d(run, me, paths, base, 10, args.wide_runs)
             continue
         vector = case not in SCALAR
         ref = _reference(paths, case, base)
