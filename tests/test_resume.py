@@ -29,7 +29,8 @@ def slow_job(tmp_path_factory):
     """A matrix-free job with many blocks, re-read every pass (memory_limit small)."""
     root = tmp_path_factory.mktemp("resume")
     rng = np.random.default_rng(7)
-    x = known_spectrum(120_000, _SPECTRUM.size, _SPECTRUM, rng, mean=3.0)
+    # 360k rows: faster reading left too little time after the first checkpoint with 120k
+    x = known_spectrum(360_000, _SPECTRUM.size, _SPECTRUM, rng, mean=3.0)
     write_parquet(root / "data", x, files=4, row_group=2_000, keep={"row": np.arange(x.shape[0])})
     cfg = make_config(str(root / "data" / "*.parquet"), root / "ref",
                       input={"keep": ["row"]},
